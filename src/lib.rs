@@ -1,0 +1,4 @@
+//! lopper: prune trained dense networks on CPU.
+#![warn(missing_docs)]
+
+pub mod solve;

@@ -1,0 +1,283 @@
+//! Per-layer pruning solvers: pure kernels, matrices in, pruned matrices out.
+//!
+//! This module owns the numerical job of lopper. Given one linear layer's dense
+//! weight `W` (`d_out x d_in`, rows are output units) and the Gram matrix of its
+//! calibration inputs `H = X^T X` (`d_in x d_in`), a solver returns a pruned
+//! weight `Ŵ` that obeys a sparsity [`Pattern`] and an [`SolveInfo`] that feeds
+//! the report. Nothing here touches files, flags or the terminal.
+//!
+//! Every solver works on the ridge-regularised matrix
+//!
+//! ```text
+//! A = H + λ I,   λ = α · mean(diag(H))          (see [`ridge_lambda`])
+//! ```
+//!
+//! and, row by row, on the objective `f(ŵ) = (w − ŵ)ᵀ A (w − ŵ)`, which is
+//! `‖X wᵀ − X ŵᵀ‖² + λ ‖w − ŵ‖²`: the squared output error on the calibration
+//! rows plus a ridge penalty that keeps kept weights close to their trained
+//! values where the calibration data says little about them.
+//!
+//! Submodules, one per step:
+//! - [`budget`]: how many weights each row / the layer keeps.
+//! - [`mask`]: top-k selection of a score matrix under a pattern.
+//! - [`baseline`]: `magnitude` and `scaled` (score-only, no weight update).
+//! - [`obs`]: the column-sequential Optimal Brain Surgeon sweep.
+//! - [`objective`]: objective and relative errors.
+//! - [`l0`]: refit and local search for the L0-constrained problem.
+
+pub mod baseline;
+pub mod budget;
+pub mod l0;
+pub mod mask;
+pub mod objective;
+pub mod obs;
+
+use faer::{Mat, MatRef, Par};
+
+/// Whether an unstructured budget applies to each output row or to the layer.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Scope {
+    /// Every output row keeps the same number of weights.
+    Row,
+    /// One budget for the whole matrix; rows may keep different counts.
+    Layer,
+}
+
+/// The sparsity pattern a pruned layer must obey.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Pattern {
+    /// A fraction `sparsity` in `[0, 1)` of the weights are zero.
+    Unstructured {
+        /// Fraction of zeros.
+        sparsity: f64,
+        /// Where the budget applies.
+        scope: Scope,
+    },
+    /// At most `n` nonzeros in each consecutive group of `m` inputs of a row.
+    NofM {
+        /// Kept per group.
+        n: usize,
+        /// Group width; must divide `d_in`.
+        m: usize,
+    },
+}
+
+/// Which solver prunes the layer.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Method {
+    /// Keep the largest `|w_ij|`.
+    Magnitude,
+    /// Keep the largest `|w_ij| · ‖X_:,j‖` (Sun et al. 2023).
+    Scaled,
+    /// One-shot Optimal Brain Surgeon column sweep (Hassibi & Stork 1993;
+    /// Frantar & Alistarh 2023).
+    Obs,
+    /// L0-constrained ridge least squares by local search.
+    L0,
+}
+
+impl Method {
+    /// The name used on the command line and in reports.
+    pub fn name(self) -> &'static str {
+        match self {
+            Method::Magnitude => "magnitude",
+            Method::Scaled => "scaled",
+            Method::Obs => "obs",
+            Method::L0 => "l0",
+        }
+    }
+}
+
+/// Settings of the local-search solver.
+#[derive(Clone, Debug, PartialEq)]
+pub struct L0Params {
+    /// Maximum number of swap sweeps per layer.
+    pub max_sweeps: usize,
+    /// Wall-clock budget per layer in seconds (`None`: unlimited).
+    pub max_seconds: Option<f64>,
+    /// Record the objective after every sweep in [`SolveInfo::trace`].
+    pub trace: bool,
+}
+
+impl Default for L0Params {
+    fn default() -> Self {
+        L0Params { max_sweeps: 20, max_seconds: None, trace: false }
+    }
+}
+
+/// Settings shared by all solvers.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SolveParams {
+    /// Which solver.
+    pub method: Method,
+    /// Which pattern.
+    pub pattern: Pattern,
+    /// Ridge strength α; `λ = α · mean(diag(H))`.
+    pub ridge_alpha: f64,
+    /// Column block width of the OBS sweep (mask chosen per block).
+    pub obs_block: usize,
+    /// Local-search settings (used by [`Method::L0`]).
+    pub l0: L0Params,
+}
+
+impl Default for SolveParams {
+    fn default() -> Self {
+        SolveParams {
+            method: Method::Obs,
+            pattern: Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row },
+            ridge_alpha: 0.01,
+            obs_block: 128,
+            l0: L0Params::default(),
+        }
+    }
+}
+
+/// What a solve did, for the report.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct SolveInfo {
+    /// Ridge λ actually added to the diagonal.
+    pub lambda: f64,
+    /// `Σ_r f_r` at the starting point of the solver (for one-shot methods,
+    /// equal to the final value).
+    pub objective_initial: f64,
+    /// `Σ_r f_r` of the returned weights.
+    pub objective_final: f64,
+    /// Which initialisation the local search started from, if any.
+    pub init: Option<&'static str>,
+    /// Local-search sweeps run.
+    pub sweeps: usize,
+    /// Swap moves accepted.
+    pub swaps: usize,
+    /// Objective after every sweep (when tracing), starting with the initial one.
+    pub trace: Vec<f64>,
+}
+
+/// A numerical failure, carrying its diagnostic.
+#[derive(Clone, Debug, PartialEq)]
+#[non_exhaustive]
+pub enum SolveError {
+    /// The ridge-regularised Gram matrix is not positive definite.
+    NotPositiveDefinite {
+        /// Ridge λ that was used.
+        lambda: f64,
+    },
+    /// The pattern cannot be applied to a layer of this width.
+    BadPattern {
+        /// What is wrong.
+        reason: String,
+    },
+}
+
+impl std::fmt::Display for SolveError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            SolveError::NotPositiveDefinite { lambda } => write!(
+                f,
+                "Gram matrix plus ridge {lambda:.3e} is not positive definite; raise --ridge"
+            ),
+            SolveError::BadPattern { reason } => write!(f, "{reason}"),
+        }
+    }
+}
+
+impl std::error::Error for SolveError {}
+
+/// A pruned layer.
+#[derive(Clone, Debug)]
+pub struct Pruned {
+    /// The pruned weight, `d_out x d_in`; zero exactly where pruned.
+    pub weight: Mat<f64>,
+    /// Solver diagnostics.
+    pub info: SolveInfo,
+}
+
+/// `λ = α · mean(diag(H))`; falls back to `α` when `H` has a zero diagonal
+/// (all-zero activations), so `A` stays positive definite.
+pub fn ridge_lambda(h: MatRef<'_, f64>, alpha: f64) -> f64 {
+    let n = h.nrows();
+    if n == 0 {
+        return alpha;
+    }
+    let mean = (0..n).map(|j| h[(j, j)]).sum::<f64>() / n as f64;
+    if mean > 0.0 {
+        alpha * mean
+    } else {
+        alpha
+    }
+}
+
+/// `A = H + λ I`, with dead inputs (`H_jj = 0`) given a unit diagonal so that
+/// `A` is invertible even when `λ = 0`. A dead input never changes the output,
+/// so this only fixes the value the solver assigns to its weight.
+pub fn regularised(h: MatRef<'_, f64>, lambda: f64) -> Mat<f64> {
+    let mut a = h.to_owned();
+    for j in 0..a.nrows() {
+        if a[(j, j)] == 0.0 {
+            a[(j, j)] = 1.0;
+        }
+        a[(j, j)] += lambda;
+    }
+    a
+}
+
+/// Check that `pattern` can be applied to a layer with `d_in` inputs.
+pub fn check_pattern(pattern: Pattern, d_in: usize) -> Result<(), SolveError> {
+    match pattern {
+        Pattern::Unstructured { sparsity, .. } => {
+            if !(0.0..1.0).contains(&sparsity) {
+                return Err(SolveError::BadPattern {
+                    reason: format!("sparsity {sparsity} is outside [0, 1)"),
+                });
+            }
+        }
+        Pattern::NofM { n, m } => {
+            if m == 0 || n == 0 || n > m {
+                return Err(SolveError::BadPattern {
+                    reason: format!("pattern {n}:{m} needs 0 < N <= M"),
+                });
+            }
+            if d_in % m != 0 {
+                return Err(SolveError::BadPattern {
+                    reason: format!("pattern {n}:{m}: M={m} does not divide the input width {d_in}"),
+                });
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Prune one layer. `w` is `d_out x d_in`, `h` is the Gram matrix `XᵀX` of the
+/// calibration inputs (`d_in x d_in`, no ridge added).
+///
+/// # Errors
+/// [`SolveError::BadPattern`] when the pattern does not fit `d_in`;
+/// [`SolveError::NotPositiveDefinite`] when `A` cannot be factored.
+///
+/// # Panics
+/// When `h` is not square with side `d_in`.
+#[track_caller]
+pub fn prune_layer(
+    w: MatRef<'_, f64>,
+    h: MatRef<'_, f64>,
+    params: &SolveParams,
+    par: Par,
+) -> Result<Pruned, SolveError> {
+    assert_eq!(h.nrows(), w.ncols(), "Gram matrix side must equal d_in");
+    assert_eq!(h.ncols(), w.ncols(), "Gram matrix must be square");
+    check_pattern(params.pattern, w.ncols())?;
+    let lambda = ridge_lambda(h, params.ridge_alpha);
+    let a = regularised(h, lambda);
+    let mut pruned = match params.method {
+        Method::Magnitude => baseline::magnitude(w, params.pattern),
+        Method::Scaled => baseline::scaled(w, h, params.pattern),
+        Method::Obs => obs::sweep(w, a.as_ref(), params.pattern, params.obs_block, par)?,
+        Method::L0 => l0::solve(w, a.as_ref(), params, par)?,
+    };
+    pruned.info.lambda = lambda;
+    if params.method != Method::L0 {
+        let f = objective::objective(w, pruned.weight.as_ref(), a.as_ref(), par);
+        pruned.info.objective_initial = f;
+        pruned.info.objective_final = f;
+    }
+    Ok(pruned)
+}
