@@ -1,0 +1,105 @@
+//! Turn raw flags into a validated [`PruneConfig`]. Every message names the
+//! option at fault.
+
+use super::args::{MethodArg, PruneArgs, ScopeArg};
+use crate::pipeline::{PruneConfig, Ridge};
+use crate::select::Selection;
+use crate::solve::{L0Params, Method, Pattern, Scope};
+
+/// Parse `N:M`.
+pub fn parse_pattern(s: &str) -> Result<(usize, usize), String> {
+    let bad = || format!("--pattern '{s}' is not of the form N:M with integers 0 < N <= M (e.g. 2:4)");
+    let (n, m) = s.split_once(':').ok_or_else(bad)?;
+    let (n, m): (usize, usize) = (n.trim().parse().map_err(|_| bad())?, m.trim().parse().map_err(|_| bad())?);
+    if n == 0 || m == 0 || n > m {
+        return Err(bad());
+    }
+    Ok((n, m))
+}
+
+/// Resolve `--threads 0` to the machine's cores.
+pub fn resolve_threads(n: usize) -> usize {
+    if n > 0 {
+        n
+    } else {
+        std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
+    }
+}
+
+/// Validate `args`.
+pub fn prune_config(args: &PruneArgs) -> Result<PruneConfig, String> {
+    let pattern = match (&args.pattern, args.sparsity) {
+        (Some(p), None) => {
+            let (n, m) = parse_pattern(p)?;
+            Pattern::NofM { n, m }
+        }
+        (None, Some(s)) => {
+            if !(0.0..1.0).contains(&s) {
+                return Err(format!("--sparsity {s} is outside [0, 1)"));
+            }
+            let scope = match args.scope {
+                ScopeArg::Row => Scope::Row,
+                ScopeArg::Layer => Scope::Layer,
+            };
+            Pattern::Unstructured { sparsity: s, scope }
+        }
+        _ => return Err("give exactly one of --sparsity and --pattern".into()),
+    };
+    let ridge = match args.ridge.trim() {
+        "auto" => Ridge::Auto,
+        s => match s.parse::<f64>() {
+            Ok(a) if a.is_finite() && a >= 0.0 => Ridge::Fixed(a),
+            _ => return Err(format!("--ridge '{s}' must be a number >= 0 or 'auto'")),
+        },
+    };
+    if !(0.0..1.0).contains(&args.holdout) {
+        return Err(format!("--holdout {} is outside [0, 1)", args.holdout));
+    }
+    if let Some(t) = args.layer_seconds {
+        if !(t.is_finite() && t > 0.0) {
+            return Err(format!("--layer-seconds {t} must be a positive number"));
+        }
+    }
+    let method = match args.method {
+        MethodArg::Magnitude => Method::Magnitude,
+        MethodArg::Scaled => Method::Scaled,
+        MethodArg::Obs => Method::Obs,
+        MethodArg::L0 => Method::L0,
+    };
+    let mut l0 = L0Params::default();
+    if let Some(n) = args.max_sweeps {
+        l0.max_sweeps = n;
+    }
+    if args.layer_seconds.is_some() {
+        l0.max_seconds = args.layer_seconds;
+    }
+    Ok(PruneConfig {
+        model: args.model.clone(),
+        activations: args.activations.clone(),
+        output: args.output.clone(),
+        report: args.report.clone(),
+        trace: args.trace.clone(),
+        method,
+        pattern,
+        ridge,
+        holdout: args.holdout,
+        selection: Selection { only: args.only.clone(), skip: args.skip.clone() },
+        threads: resolve_threads(args.threads),
+        l0,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn patterns() {
+        assert_eq!(parse_pattern("2:4"), Ok((2, 4)));
+        assert_eq!(parse_pattern(" 1 : 8 "), Ok((1, 8)));
+        for bad in ["2", "4:2", "0:4", "a:b", "2:0", "2:4:8"] {
+            let e = parse_pattern(bad).unwrap_err();
+            assert!(e.contains("--pattern"), "{bad}: {e}");
+        }
+    }
+}

@@ -1,0 +1,99 @@
+//! The command-line front end: flags → config → pipeline, then printing.
+//!
+//! Exit codes: 0 success, 2 usage or input error, 1 anything else. Errors are
+//! printed as one line, `lopper: error: …`, on stderr.
+
+mod args;
+mod config;
+mod inspect;
+
+use crate::pipeline::{self, ErrorKind, Progress};
+use args::{Cli, Command};
+use clap::Parser;
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+
+/// Exit code for success.
+pub const EXIT_OK: i32 = 0;
+/// Exit code for failures that are not the input's fault.
+pub const EXIT_FAILURE: i32 = 1;
+/// Exit code for usage and input errors.
+pub const EXIT_USAGE: i32 = 2;
+
+/// A front-end failure with its exit code.
+struct Failure {
+    code: i32,
+    message: String,
+}
+
+impl Failure {
+    fn usage(message: impl Into<String>) -> Self {
+        Failure { code: EXIT_USAGE, message: message.into() }
+    }
+}
+
+impl From<pipeline::Error> for Failure {
+    fn from(e: pipeline::Error) -> Self {
+        let code = if e.kind() == ErrorKind::Input { EXIT_USAGE } else { EXIT_FAILURE };
+        Failure { code, message: e.to_string() }
+    }
+}
+
+/// Run the tool with the process arguments; returns the exit code.
+pub fn run() -> i32 {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let code = if e.use_stderr() { EXIT_USAGE } else { EXIT_OK };
+            let _ = e.print();
+            return code;
+        }
+    };
+    let result = match cli.command {
+        Command::Inspect(a) => inspect::run(&a),
+        Command::Prune(a) => prune(&a),
+    };
+    match result {
+        Ok(()) => EXIT_OK,
+        Err(f) => {
+            eprintln!("lopper: error: {}", f.message);
+            f.code
+        }
+    }
+}
+
+fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
+    let cfg = config::prune_config(a).map_err(Failure::usage)?;
+    // A second global pool cannot be built; the first one wins, which is fine
+    // for a process that runs one command.
+    let _ = rayon::ThreadPoolBuilder::new().num_threads(cfg.threads).build_global();
+    let bar = if a.quiet {
+        ProgressBar::hidden()
+    } else {
+        ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr())
+    };
+    bar.set_style(
+        ProgressStyle::with_template("{spinner} pruning {pos}/{len} layers [{elapsed_precise}] {wide_msg}")
+            .expect("valid template"),
+    );
+    let on_progress = |p: Progress<'_>| match p {
+        Progress::Start(n) => bar.set_length(n as u64),
+        Progress::Layer(i, name) => {
+            bar.set_position(i as u64);
+            bar.set_message(name.to_string());
+        }
+        Progress::Writing => {
+            bar.set_position(bar.length().unwrap_or(0));
+            bar.set_message("writing outputs");
+        }
+    };
+    let report = pipeline::prune(&cfg, &on_progress);
+    bar.finish_and_clear();
+    let report = report?;
+    if !a.quiet {
+        print!("{}", report.render_table());
+        for o in &report.outputs {
+            println!("wrote {o}");
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,451 @@
+//! The prune job: load → statistics → solve → write, over the selected layers.
+//!
+//! This is the only place that combines files ([`crate::io`]), layer
+//! selection ([`crate::select`]), calibration statistics ([`crate::calib`]),
+//! solvers ([`crate::solve`]) and the report ([`crate::report`]). Everything
+//! that can be checked before solving is checked first (files, names,
+//! shapes, patterns, output paths), so a bad input fails in seconds and no
+//! output is written unless every layer was pruned.
+//!
+//! Layers are pruned one after another in name order; parallelism lives
+//! inside the kernels (matrix products and rows), bounded by `threads`.
+
+use crate::calib::{holdout_count, LayerGrams};
+use crate::io::{self, Model, TensorFile, TensorInfo};
+use crate::report::{LayerReport, Report, Settings, Summary, VALIDATION_NOTICE};
+use crate::select::Selection;
+use crate::solve::{self, objective, L0Params, Method, Pattern, Scope, SolveParams};
+use faer::{Mat, Par};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+/// The ridge α values tried by `--ridge auto`.
+pub const AUTO_RIDGE_GRID: &[f64] = &[1e-3, 1e-2, 1e-1, 1.0];
+
+/// How the ridge strength is chosen.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Ridge {
+    /// A fixed α for every layer.
+    Fixed(f64),
+    /// Per layer, the α of [`AUTO_RIDGE_GRID`] with the lowest held-out error.
+    Auto,
+}
+
+/// Everything a prune run needs, validated by the caller's flag parsing.
+#[derive(Clone, Debug)]
+pub struct PruneConfig {
+    /// Model file, index or directory.
+    pub model: PathBuf,
+    /// Activations file.
+    pub activations: PathBuf,
+    /// Output file (single-file model) or directory.
+    pub output: PathBuf,
+    /// JSON report path.
+    pub report: Option<PathBuf>,
+    /// JSON-lines objective trace path.
+    pub trace: Option<PathBuf>,
+    /// Solver.
+    pub method: Method,
+    /// Sparsity pattern.
+    pub pattern: Pattern,
+    /// Ridge choice.
+    pub ridge: Ridge,
+    /// Fraction of activation rows held out.
+    pub holdout: f64,
+    /// Which tensors.
+    pub selection: Selection,
+    /// Worker threads (resolved, ≥ 1).
+    pub threads: usize,
+    /// Local-search settings.
+    pub l0: L0Params,
+}
+
+/// What went wrong, and whose fault it is.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum ErrorKind {
+    /// Bad input: files, names, shapes, options (exit code 2).
+    Input,
+    /// A solver failed on valid input (exit code 1).
+    Solve,
+    /// Writing an output failed (exit code 1).
+    Output,
+}
+
+/// A pipeline failure: one line naming its object.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Error {
+    kind: ErrorKind,
+    message: String,
+}
+
+impl Error {
+    fn input(message: impl Into<String>) -> Self {
+        Error { kind: ErrorKind::Input, message: message.into() }
+    }
+
+    /// Whose fault.
+    pub fn kind(&self) -> ErrorKind {
+        self.kind
+    }
+}
+
+impl std::fmt::Display for Error {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.message)
+    }
+}
+
+impl std::error::Error for Error {}
+
+impl From<io::LoadError> for Error {
+    fn from(e: io::LoadError) -> Self {
+        Error::input(e.to_string())
+    }
+}
+
+impl From<io::WriteError> for Error {
+    fn from(e: io::WriteError) -> Self {
+        Error { kind: ErrorKind::Output, message: e.to_string() }
+    }
+}
+
+/// Progress events for a front end.
+#[derive(Clone, Copy, Debug)]
+pub enum Progress<'a> {
+    /// Solving is about to start on this many layers.
+    Start(usize),
+    /// Layer `index` (0-based) is starting.
+    Layer(usize, &'a str),
+    /// All layers are done; outputs are being written.
+    Writing,
+}
+
+/// One selected layer and its validated activation tensor.
+struct Job<'a> {
+    weight: &'a TensorInfo,
+    rows: usize,
+}
+
+fn pattern_label(p: Pattern) -> (Option<f64>, Option<String>, &'static str) {
+    match p {
+        Pattern::Unstructured { sparsity, scope: Scope::Row } => (Some(sparsity), None, "row"),
+        Pattern::Unstructured { sparsity, scope: Scope::Layer } => (Some(sparsity), None, "layer"),
+        Pattern::NofM { n, m } => (None, Some(format!("{n}:{m}")), "group"),
+    }
+}
+
+/// Canonical form of a path that may not exist yet.
+fn canonical(p: &Path) -> PathBuf {
+    if let Ok(c) = p.canonicalize() {
+        return c;
+    }
+    let parent = p.parent().filter(|q| !q.as_os_str().is_empty()).unwrap_or(Path::new("."));
+    match (parent.canonicalize(), p.file_name()) {
+        (Ok(dir), Some(name)) => dir.join(name),
+        _ => p.to_path_buf(),
+    }
+}
+
+/// Refuse output paths that are inputs, or that collide with each other.
+fn check_outputs(cfg: &PruneConfig, model: &Model) -> Result<(), Error> {
+    let mut inputs: Vec<PathBuf> = model.input_files();
+    inputs.push(canonical(&cfg.activations));
+    if let Some(dir) = model.directory() {
+        inputs.push(canonical(dir));
+    }
+    let mut outs = vec![("-o", &cfg.output)];
+    if let Some(r) = &cfg.report {
+        outs.push(("--report", r));
+    }
+    if let Some(t) = &cfg.trace {
+        outs.push(("--trace", t));
+    }
+    for (i, (flag, p)) in outs.iter().enumerate() {
+        let c = canonical(p);
+        if inputs.contains(&c) {
+            return Err(Error::input(format!(
+                "{flag} {}: refusing to overwrite an input file",
+                p.display()
+            )));
+        }
+        for (other, q) in &outs[..i] {
+            if canonical(q) == c {
+                return Err(Error::input(format!(
+                    "{flag} {} is the same path as {other}",
+                    p.display()
+                )));
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Check every selected layer against its activation tensor.
+fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Vec<Job<'a>>, Error> {
+    let all = model.tensors();
+    let names: Vec<&str> = all.iter().map(|t| t.name.as_str()).collect();
+    let unmatched = cfg.selection.unmatched_only(&names);
+    if let Some(g) = unmatched.first() {
+        return Err(Error::input(format!("--only '{g}' matches no tensor in {}", cfg.model.display())));
+    }
+    let selected: Vec<&TensorInfo> = all
+        .into_iter()
+        .filter(|t| cfg.selection.selects(&t.name, &t.shape, t.is_float()))
+        .collect();
+    if selected.is_empty() {
+        return Err(Error::input(format!(
+            "no prunable tensor selected in {} (check --only / --skip; `lopper inspect` lists candidates)",
+            cfg.model.display()
+        )));
+    }
+    let apath = cfg.activations.display();
+    let mut jobs = Vec::with_capacity(selected.len());
+    for w in selected {
+        let (d_out, d_in) = (w.shape[0], w.shape[1]);
+        let a = acts.get(&w.name).ok_or_else(|| {
+            Error::input(format!(
+                "{apath}: no activation tensor '{}' for the selected layer of that name \
+                 (add it, or leave the layer out with --skip)",
+                w.name
+            ))
+        })?;
+        if !a.is_float() {
+            return Err(Error::input(format!(
+                "{apath}: activation tensor '{}' has dtype {:?}; expected a float dtype",
+                w.name, a.dtype
+            )));
+        }
+        if a.shape.len() != 2 {
+            return Err(Error::input(format!(
+                "{apath}: activation tensor '{}' has shape {:?}; expected [rows, {d_in}]",
+                w.name, a.shape
+            )));
+        }
+        let (rows, width) = (a.shape[0], a.shape[1]);
+        if width != d_in {
+            let why = if width == d_out {
+                format!(
+                    "its width matches the layer's output size d_out={d_out}, not its input size \
+                     d_in={d_in}: store the inputs that flow into the layer"
+                )
+            } else {
+                format!("its width matches neither d_in={d_in} nor d_out={d_out}")
+            };
+            return Err(Error::input(format!(
+                "{apath}: activation tensor '{}' is [{rows}, {width}] for weight [{d_out}, {d_in}]; {why}",
+                w.name
+            )));
+        }
+        let fitted = rows - holdout_count(rows, cfg.holdout);
+        if fitted == 0 {
+            return Err(Error::input(format!(
+                "{apath}: activation tensor '{}' has {rows} rows, none left to fit after --holdout {}",
+                w.name, cfg.holdout
+            )));
+        }
+        if cfg.ridge == Ridge::Auto && fitted == rows {
+            return Err(Error::input(format!(
+                "--ridge auto needs held-out rows, but '{}' has {rows} rows and --holdout {} holds none out",
+                w.name, cfg.holdout
+            )));
+        }
+        solve::check_pattern(cfg.pattern, d_in)
+            .map_err(|e| Error::input(format!("layer '{}' [{d_out}, {d_in}]: {e}", w.name)))?;
+        jobs.push(Job { weight: w, rows });
+    }
+    Ok(jobs)
+}
+
+/// Rows per chunk when streaming activations (about 32 MiB of f64).
+fn chunk_rows(width: usize) -> usize {
+    ((4 << 20) / width.max(1)).max(1)
+}
+
+/// Nonzeros of `values` once stored as `dtype` (a tiny kept weight can round
+/// to zero in F16/BF16, and the report counts what the file holds).
+fn stored_nonzeros(values: &[f64], dtype: safetensors::Dtype) -> usize {
+    values.iter().filter(|&&v| io::encodes_to_nonzero(v, dtype)).count()
+}
+
+/// Result of pruning one layer.
+struct Solved {
+    values: Vec<f64>,
+    report: LayerReport,
+    trace: Vec<f64>,
+}
+
+fn prune_one(
+    cfg: &PruneConfig,
+    model: &Model,
+    acts: &TensorFile,
+    job: &Job<'_>,
+    par: Par,
+) -> Result<Solved, Error> {
+    let t0 = Instant::now();
+    let info = job.weight;
+    let (d_out, d_in) = (info.shape[0], info.shape[1]);
+    let flat = model.read_f64(&info.name)?;
+    let w = Mat::from_fn(d_out, d_in, |r, c| flat[r * d_in + c]);
+    drop(flat);
+    let mut grams = LayerGrams::new(d_in);
+    let step = chunk_rows(d_in);
+    let mut start = 0;
+    while start < job.rows {
+        let end = (start + step).min(job.rows);
+        let x = acts.read_rows_f64(&info.name, start..end)?;
+        grams.add_chunk(&x, start, cfg.holdout, par);
+        start = end;
+    }
+    let h = grams.calib.matrix();
+    let held = (grams.holdout.rows() > 0).then(|| grams.holdout.matrix());
+    let base = SolveParams {
+        method: cfg.method,
+        pattern: cfg.pattern,
+        ridge_alpha: 0.01,
+        obs_block: 128,
+        l0: L0Params { trace: cfg.trace.is_some(), ..cfg.l0.clone() },
+    };
+    let solve_err = |e: solve::SolveError| Error {
+        kind: ErrorKind::Solve,
+        message: format!("layer '{}' [{d_out}, {d_in}]: {e}", info.name),
+    };
+    let alpha = match cfg.ridge {
+        Ridge::Fixed(a) => a,
+        // The ridge does not change score-only methods: nothing to choose.
+        Ridge::Auto if matches!(cfg.method, Method::Magnitude | Method::Scaled) => 0.01,
+        Ridge::Auto => {
+            let held = held.expect("planned: auto ridge has held-out rows");
+            let mut best = (f64::INFINITY, AUTO_RIDGE_GRID[0]);
+            for &a in AUTO_RIDGE_GRID {
+                let p = SolveParams { ridge_alpha: a, ..base.clone() };
+                let trial = solve::prune_layer(w.as_ref(), h, &p, par).map_err(solve_err)?;
+                let e = objective::relative_error(w.as_ref(), trial.weight.as_ref(), held, par);
+                if e < best.0 {
+                    best = (e, a);
+                }
+            }
+            best.1
+        }
+    };
+    let params = SolveParams { ridge_alpha: alpha, ..base };
+    let pruned = solve::prune_layer(w.as_ref(), h, &params, par).map_err(solve_err)?;
+    let what = pruned.weight;
+    let rel_error = objective::relative_error(w.as_ref(), what.as_ref(), h, par);
+    let rel_error_holdout = held.map(|hh| objective::relative_error(w.as_ref(), what.as_ref(), hh, par));
+    let mut values = Vec::with_capacity(d_out * d_in);
+    for r in 0..d_out {
+        for c in 0..d_in {
+            values.push(what[(r, c)]);
+        }
+    }
+    let kept = stored_nonzeros(&values, info.dtype);
+    let total = d_out * d_in;
+    let si = pruned.info;
+    let report = LayerReport {
+        name: info.name.clone(),
+        shape: [d_out, d_in],
+        kept,
+        total,
+        sparsity: 1.0 - kept as f64 / total as f64,
+        rel_error,
+        rel_error_holdout,
+        seconds: t0.elapsed().as_secs_f64(),
+        calibration_rows: grams.calib.rows(),
+        holdout_rows: grams.holdout.rows(),
+        ridge_alpha: alpha,
+        ridge_lambda: si.lambda,
+        objective_initial: si.objective_initial,
+        objective_final: si.objective_final,
+        sweeps: si.sweeps,
+        swaps: si.swaps,
+        init: si.init.map(str::to_string),
+    };
+    Ok(Solved { values, report, trace: si.trace })
+}
+
+/// Prune the selected layers of `cfg.model` and write the outputs.
+///
+/// # Errors
+/// [`ErrorKind::Input`] for anything wrong with the inputs or options,
+/// [`ErrorKind::Solve`] when a solver fails, [`ErrorKind::Output`] when
+/// writing fails. Nothing is written unless every layer succeeded.
+pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Report, Error> {
+    let t0 = Instant::now();
+    let model = Model::open(&cfg.model)?;
+    let acts = TensorFile::open(&cfg.activations)?;
+    check_outputs(cfg, &model)?;
+    let jobs = plan(cfg, &model, &acts)?;
+    let par = if cfg.threads > 1 { Par::rayon(cfg.threads) } else { Par::Seq };
+
+    progress(Progress::Start(jobs.len()));
+    let mut replaced = BTreeMap::new();
+    let mut layers = Vec::with_capacity(jobs.len());
+    let mut traces = Vec::new();
+    for (i, job) in jobs.iter().enumerate() {
+        progress(Progress::Layer(i, &job.weight.name));
+        let s = prune_one(cfg, &model, &acts, job, par)?;
+        replaced.insert(job.weight.name.clone(), s.values);
+        traces.push((job.weight.name.clone(), s.trace));
+        layers.push(s.report);
+    }
+    progress(Progress::Writing);
+
+    let (sparsity, pattern, scope) = pattern_label(cfg.pattern);
+    let ridge = match cfg.ridge {
+        Ridge::Fixed(a) => serde_json::json!(a),
+        Ridge::Auto => serde_json::json!("auto"),
+    };
+    let settings = Settings {
+        method: cfg.method.name().to_string(),
+        sparsity,
+        pattern: pattern.clone(),
+        scope: scope.to_string(),
+        ridge: ridge.clone(),
+        holdout: cfg.holdout,
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        model: cfg.model.display().to_string(),
+        activations: cfg.activations.display().to_string(),
+        threads: cfg.threads,
+    };
+    let mut meta = BTreeMap::new();
+    meta.insert("lopper.version".to_string(), settings.tool_version.clone());
+    meta.insert("lopper.method".to_string(), settings.method.clone());
+    match (sparsity, &pattern) {
+        (_, Some(p)) => meta.insert("lopper.pattern".to_string(), p.clone()),
+        (Some(s), None) => meta.insert("lopper.sparsity".to_string(), s.to_string()),
+        _ => None,
+    };
+    meta.insert("lopper.scope".to_string(), scope.to_string());
+    meta.insert("lopper.ridge".to_string(), ridge.to_string().trim_matches('"').to_string());
+    meta.insert("lopper.holdout".to_string(), cfg.holdout.to_string());
+    meta.insert("lopper.pruned_layers".to_string(), layers.len().to_string());
+
+    let mut outputs: Vec<String> = io::write_model(&model, &cfg.output, &replaced, &meta)?
+        .iter()
+        .map(|p| p.display().to_string())
+        .collect();
+    if let Some(path) = &cfg.trace {
+        let mut text = String::new();
+        for (name, t) in &traces {
+            for (sweep, f) in t.iter().enumerate() {
+                let line = serde_json::json!({ "layer": name, "sweep": sweep, "objective": f });
+                text.push_str(&line.to_string());
+                text.push('\n');
+            }
+        }
+        io::write_atomic(path, |w| std::io::Write::write_all(w, text.as_bytes()))?;
+        outputs.push(path.display().to_string());
+    }
+    if let Some(path) = &cfg.report {
+        outputs.push(path.display().to_string());
+    }
+    let summary = Summary::of(&layers, t0.elapsed().as_secs_f64());
+    let report = Report { settings, layers, summary, outputs, notice: VALIDATION_NOTICE.to_string() };
+    if let Some(path) = &cfg.report {
+        let json = report.to_json();
+        io::write_atomic(path, |w| std::io::Write::write_all(w, json.as_bytes()))?;
+    }
+    Ok(report)
+}

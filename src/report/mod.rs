@@ -1,0 +1,265 @@
+//! The per-layer error report: plain result structs, rendered as a terminal
+//! table or as JSON.
+//!
+//! Field names of the JSON form are a contract (`settings`, `layers[]` with
+//! `name, shape, kept, sparsity, rel_error, rel_error_holdout, seconds`, and
+//! `summary`); fields may be added, never renamed. Layers are listed in the
+//! order they were pruned (sorted by tensor name), so the same inputs give
+//! the same report apart from timings.
+
+use serde::Serialize;
+use std::fmt::Write as _;
+
+/// A reminder that calibration error is not model quality.
+pub const VALIDATION_NOTICE: &str = "Reconstruction error on calibration data does not show every way \
+a pruned model can get worse: validate it on your own evaluation data before deploying.";
+
+/// How the run was set up.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct Settings {
+    /// Solver name (`magnitude`, `scaled`, `obs`, `l0`).
+    pub method: String,
+    /// Target fraction of zeros, for unstructured patterns.
+    pub sparsity: Option<f64>,
+    /// `N:M` pattern, when used.
+    pub pattern: Option<String>,
+    /// `row` or `layer` for unstructured patterns; `group` for N:M.
+    pub scope: String,
+    /// Ridge α (a number) or `"auto"`.
+    pub ridge: serde_json::Value,
+    /// Fraction of activation rows held out.
+    pub holdout: f64,
+    /// lopper version.
+    pub tool_version: String,
+    /// Model path as given.
+    pub model: String,
+    /// Activations path as given.
+    pub activations: String,
+    /// Worker threads.
+    pub threads: usize,
+}
+
+/// One pruned layer.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct LayerReport {
+    /// Tensor name.
+    pub name: String,
+    /// `[d_out, d_in]`.
+    pub shape: [usize; 2],
+    /// Nonzero weights after pruning (as written).
+    pub kept: usize,
+    /// `d_out · d_in`.
+    pub total: usize,
+    /// Achieved fraction of zeros.
+    pub sparsity: f64,
+    /// `‖XWᵀ − XŴᵀ‖²_F / ‖XWᵀ‖²_F` on calibration rows.
+    pub rel_error: f64,
+    /// The same on held-out rows (`null` without held-out rows).
+    pub rel_error_holdout: Option<f64>,
+    /// Wall-clock seconds for this layer (statistics + solve).
+    pub seconds: f64,
+    /// Calibration rows the solver fitted.
+    pub calibration_rows: usize,
+    /// Held-out rows.
+    pub holdout_rows: usize,
+    /// Ridge α used for this layer.
+    pub ridge_alpha: f64,
+    /// Ridge λ = α · mean(diag(H)).
+    pub ridge_lambda: f64,
+    /// Objective `Σ_r (w−ŵ)ᵀA(w−ŵ)` at the solver's start.
+    pub objective_initial: f64,
+    /// Objective at the end.
+    pub objective_final: f64,
+    /// Local-search sweeps (0 for one-shot methods).
+    pub sweeps: usize,
+    /// Swap moves accepted.
+    pub swaps: usize,
+    /// Starting point of the local search, if any.
+    pub init: Option<String>,
+}
+
+/// Totals over the pruned layers.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct Summary {
+    /// Pruned layers.
+    pub layers: usize,
+    /// Nonzeros kept over all pruned layers.
+    pub kept: usize,
+    /// Weights in all pruned layers.
+    pub total: usize,
+    /// Overall fraction of zeros in the pruned layers.
+    pub sparsity: f64,
+    /// Mean of `rel_error` over layers.
+    pub mean_rel_error: f64,
+    /// Mean of `rel_error_holdout` over layers that have held-out rows.
+    pub mean_rel_error_holdout: Option<f64>,
+    /// Total wall-clock seconds.
+    pub seconds: f64,
+}
+
+/// The whole report.
+#[derive(Clone, Debug, Serialize, PartialEq)]
+pub struct Report {
+    /// Run settings.
+    pub settings: Settings,
+    /// Per layer.
+    pub layers: Vec<LayerReport>,
+    /// Totals.
+    pub summary: Summary,
+    /// Files written.
+    pub outputs: Vec<String>,
+    /// [`VALIDATION_NOTICE`].
+    pub notice: String,
+}
+
+impl Summary {
+    /// Totals of `layers`, with `seconds` of wall clock.
+    pub fn of(layers: &[LayerReport], seconds: f64) -> Self {
+        let kept: usize = layers.iter().map(|l| l.kept).sum();
+        let total: usize = layers.iter().map(|l| l.total).sum();
+        let n = layers.len().max(1) as f64;
+        let held: Vec<f64> = layers.iter().filter_map(|l| l.rel_error_holdout).collect();
+        Summary {
+            layers: layers.len(),
+            kept,
+            total,
+            sparsity: if total > 0 { 1.0 - kept as f64 / total as f64 } else { 0.0 },
+            mean_rel_error: layers.iter().map(|l| l.rel_error).sum::<f64>() / n,
+            mean_rel_error_holdout: (!held.is_empty())
+                .then(|| held.iter().sum::<f64>() / held.len() as f64),
+            seconds,
+        }
+    }
+}
+
+fn fmt_err(x: Option<f64>) -> String {
+    match x {
+        Some(v) if v.is_finite() => format!("{v:.4e}"),
+        Some(v) => format!("{v}"),
+        None => "-".to_string(),
+    }
+}
+
+impl Report {
+    /// The report as a fixed-width text table.
+    pub fn render_table(&self) -> String {
+        let s = &self.settings;
+        let target = match (&s.pattern, s.sparsity) {
+            (Some(p), _) => format!("pattern {p}"),
+            (None, Some(x)) => format!("sparsity {x} per {}", s.scope),
+            _ => String::new(),
+        };
+        let mut out = String::new();
+        let _ = writeln!(out, "lopper {} | method {} | {target} | ridge {}", s.tool_version, s.method, s.ridge);
+        let wname = self.layers.iter().map(|l| l.name.len()).max().unwrap_or(5).max(5);
+        let _ = writeln!(
+            out,
+            "{:<wname$}  {:>11}  {:>17}  {:>8}  {:>11}  {:>11}  {:>7}",
+            "layer", "d_out x d_in", "kept / total", "zeros", "err calib", "err held", "sec"
+        );
+        let _ = writeln!(out, "{}", "-".repeat(wname + 78));
+        for l in &self.layers {
+            let _ = writeln!(
+                out,
+                "{:<wname$}  {:>11}  {:>17}  {:>7.2}%  {:>11}  {:>11}  {:>7.2}",
+                l.name,
+                format!("{}x{}", l.shape[0], l.shape[1]),
+                format!("{}/{}", l.kept, l.total),
+                100.0 * l.sparsity,
+                fmt_err(Some(l.rel_error)),
+                fmt_err(l.rel_error_holdout),
+                l.seconds
+            );
+        }
+        let m = &self.summary;
+        let _ = writeln!(out, "{}", "-".repeat(wname + 78));
+        let _ = writeln!(
+            out,
+            "{} layers, {:.2}% zeros ({} of {} weights kept); mean error calib {} held-out {}; {:.2} s",
+            m.layers,
+            100.0 * m.sparsity,
+            m.kept,
+            m.total,
+            fmt_err(Some(m.mean_rel_error)),
+            fmt_err(m.mean_rel_error_holdout),
+            m.seconds
+        );
+        let _ = writeln!(out, "note: {}", self.notice);
+        out
+    }
+
+    /// The report as pretty JSON. Non-finite numbers become `null`.
+    pub fn to_json(&self) -> String {
+        serde_json::to_string_pretty(self).expect("report serialises")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn layer(name: &str, kept: usize, err: f64, held: Option<f64>) -> LayerReport {
+        LayerReport {
+            name: name.into(),
+            shape: [4, 5],
+            kept,
+            total: 20,
+            sparsity: 1.0 - kept as f64 / 20.0,
+            rel_error: err,
+            rel_error_holdout: held,
+            seconds: 0.5,
+            calibration_rows: 90,
+            holdout_rows: 10,
+            ridge_alpha: 0.01,
+            ridge_lambda: 0.02,
+            objective_initial: 1.0,
+            objective_final: 1.0,
+            sweeps: 0,
+            swaps: 0,
+            init: None,
+        }
+    }
+
+    #[test]
+    fn summary_means_and_sparsity() {
+        let l = [layer("a", 10, 0.1, Some(0.2)), layer("b", 5, 0.3, None)];
+        let s = Summary::of(&l, 2.0);
+        assert_eq!((s.kept, s.total), (15, 40));
+        assert!((s.sparsity - 0.625).abs() < 1e-15);
+        assert!((s.mean_rel_error - 0.2).abs() < 1e-15);
+        assert_eq!(s.mean_rel_error_holdout, Some(0.2));
+    }
+
+    #[test]
+    fn json_has_contract_fields() {
+        let layers = vec![layer("a", 10, 0.1, Some(0.2))];
+        let r = Report {
+            settings: Settings {
+                method: "obs".into(),
+                sparsity: Some(0.5),
+                pattern: None,
+                scope: "row".into(),
+                ridge: serde_json::json!(0.01),
+                holdout: 0.1,
+                tool_version: "0".into(),
+                model: "m".into(),
+                activations: "a".into(),
+                threads: 1,
+            },
+            summary: Summary::of(&layers, 1.0),
+            layers,
+            outputs: vec![],
+            notice: VALIDATION_NOTICE.into(),
+        };
+        let v: serde_json::Value = serde_json::from_str(&r.to_json()).unwrap();
+        for k in ["name", "shape", "kept", "sparsity", "rel_error", "rel_error_holdout", "seconds"] {
+            assert!(v["layers"][0].get(k).is_some(), "missing layers[].{k}");
+        }
+        for k in ["sparsity", "mean_rel_error", "mean_rel_error_holdout", "seconds"] {
+            assert!(v["summary"].get(k).is_some(), "missing summary.{k}");
+        }
+        assert_eq!(v["settings"]["method"], "obs");
+        let t = r.render_table();
+        assert!(t.contains("50.00%") && t.contains("1.0000e-1"), "{t}");
+    }
+}
