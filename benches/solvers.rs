@@ -1,1 +1,130 @@
-fn main(){}
+//! Solver benchmark: time and relative error of each method on synthetic
+//! layers with structured activations, next to one dense Cholesky
+//! factorisation of the same Gram matrix (the yardstick for "how many
+//! factorisations does a method cost").
+//!
+//! Run with `cargo bench --bench solvers` (add `-- --quick` for a smaller
+//! run). Prints a Markdown table; the figures in docs/benchmarks.md come
+//! from this program.
+
+use faer::{Mat, Par, Side};
+use lopper::calib::Gram;
+use lopper::solve::{self, objective, Method, Pattern, Scope, SolveParams};
+use std::time::Instant;
+
+/// A small, fast, seeded generator (SplitMix64) and Box–Muller normals.
+struct Rng(u64);
+
+impl Rng {
+    fn next_u64(&mut self) -> u64 {
+        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
+        let mut z = self.0;
+        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+        z ^ (z >> 31)
+    }
+    fn uniform(&mut self) -> f64 {
+        ((self.next_u64() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
+    }
+    fn normal(&mut self) -> f64 {
+        let (u, v) = (self.uniform(), self.uniform());
+        (-2.0 * u.ln()).sqrt() * (std::f64::consts::TAU * v).cos()
+    }
+}
+
+/// Activations with the structure seen in trained networks: a low-rank
+/// shared component, per-input scales spread over two decades, and a few
+/// loud outlier inputs. Returns the Gram matrix of `n` rows.
+fn structured_gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
+    let mut rng = Rng(seed);
+    let rank = 32.min(d);
+    let mix = Mat::from_fn(rank, d, |_, _| rng.normal());
+    let scale: Vec<f64> = (0..d)
+        .map(|j| {
+            let s = (10f64).powf(rng.uniform() * 2.0 - 1.0);
+            if j % 97 == 5 { 20.0 * s } else { s }
+        })
+        .collect();
+    let mut gram = Gram::new(d);
+    let chunk = 2048;
+    let mut done = 0;
+    while done < n {
+        let m = chunk.min(n - done);
+        let mut x = vec![0.0; m * d];
+        for i in 0..m {
+            let z: Vec<f64> = (0..rank).map(|_| rng.normal()).collect();
+            for j in 0..d {
+                let shared: f64 = (0..rank).map(|k| z[k] * mix[(k, j)]).sum::<f64>() / (rank as f64).sqrt();
+                x[i * d + j] = scale[j] * (0.8 * shared + 0.6 * rng.normal());
+            }
+        }
+        gram.add_rows(&x, Par::rayon(0));
+        done += m;
+    }
+    gram.matrix().to_owned()
+}
+
+fn weights(d_out: usize, d_in: usize, seed: u64) -> Mat<f64> {
+    let mut rng = Rng(seed);
+    let row_scale: Vec<f64> = (0..d_out).map(|_| 0.5 + rng.uniform()).collect();
+    Mat::from_fn(d_out, d_in, |r, _| row_scale[r] * rng.normal() / (d_in as f64).sqrt())
+}
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(|a, b| a.partial_cmp(b).unwrap());
+    v[v.len() / 2]
+}
+
+fn time<T>(reps: usize, mut f: impl FnMut() -> T) -> (f64, T) {
+    let mut times = Vec::new();
+    let mut out = None;
+    for _ in 0..reps {
+        let t = Instant::now();
+        out = Some(f());
+        times.push(t.elapsed().as_secs_f64());
+    }
+    (median(times), out.unwrap())
+}
+
+fn main() {
+    let quick = std::env::args().any(|a| a == "--quick");
+    let rows = if quick { 4096 } else { 16384 };
+    let reps = if quick { 1 } else { 3 };
+    let par = Par::rayon(0);
+    println!(
+        "lopper solver benchmark: {} cores, {rows} calibration rows, median of {reps}",
+        std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
+    );
+    let shapes: &[(usize, usize)] = if quick { &[(384, 1536)] } else { &[(1536, 1536), (384, 1536)] };
+    let patterns = [
+        ("50% per-row", Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }),
+        ("90% per-row", Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }),
+        ("2:4", Pattern::NofM { n: 2, m: 4 }),
+    ];
+    for &(d_out, d_in) in shapes {
+        let t = Instant::now();
+        let h = structured_gram(rows, d_in, 11);
+        let w = weights(d_out, d_in, 12);
+        println!("\n### layer {d_out} x {d_in} (statistics built in {:.2} s)\n", t.elapsed().as_secs_f64());
+        let a = solve::regularised(h.as_ref(), solve::ridge_lambda(h.as_ref(), 0.01));
+        let (t_chol, _) = time(reps, || a.llt(Side::Lower).map(|_| ()));
+        println!("dense Cholesky of A ({d_in} x {d_in}): {:.4} s\n", t_chol);
+        println!("| pattern | method | seconds | x Cholesky | rel. error | sweeps | swaps |");
+        println!("|---|---|---:|---:|---:|---:|---:|");
+        for (label, pattern) in patterns {
+            for method in [Method::Magnitude, Method::Obs, Method::L0] {
+                let params = SolveParams { method, pattern, ..SolveParams::default() };
+                let (secs, pruned) =
+                    time(reps, || solve::prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap());
+                let err = objective::relative_error(w.as_ref(), pruned.weight.as_ref(), h.as_ref(), par);
+                println!(
+                    "| {label} | {} | {secs:.3} | {:.1} | {err:.4e} | {} | {} |",
+                    method.name(),
+                    secs / t_chol,
+                    pruned.info.sweeps,
+                    pruned.info.swaps
+                );
+            }
+        }
+    }
+}

@@ -1,0 +1,188 @@
+//! Shared helpers for the integration tests: scratch folders, a minimal
+//! safetensors writer written from the format's public description (8-byte
+//! little-endian header length, JSON header, raw little-endian data) and
+//! independent of lopper's own writer, and a runner for the built binary.
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+/// A scratch folder removed on drop.
+pub struct Scratch(pub PathBuf);
+
+impl Scratch {
+    pub fn new(tag: &str) -> Self {
+        static N: AtomicUsize = AtomicUsize::new(0);
+        let dir = std::env::temp_dir().join(format!(
+            "lopper-test-{}-{}-{}",
+            tag,
+            std::process::id(),
+            N.fetch_add(1, Ordering::SeqCst)
+        ));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).unwrap();
+        Scratch(dir)
+    }
+    pub fn path(&self, name: &str) -> PathBuf {
+        self.0.join(name)
+    }
+    /// Names of the files in the folder, sorted.
+    pub fn files(&self) -> Vec<String> {
+        let mut v: Vec<String> = std::fs::read_dir(&self.0)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
+        v.sort();
+        v
+    }
+}
+
+impl Drop for Scratch {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+/// One tensor for [`st_bytes`]: name, dtype string, shape, raw bytes.
+pub struct T {
+    pub name: String,
+    pub dtype: &'static str,
+    pub shape: Vec<usize>,
+    pub data: Vec<u8>,
+}
+
+pub fn f32s(name: &str, shape: &[usize], v: &[f32]) -> T {
+    assert_eq!(shape.iter().product::<usize>(), v.len());
+    T { name: name.into(), dtype: "F32", shape: shape.to_vec(), data: v.iter().flat_map(|x| x.to_le_bytes()).collect() }
+}
+
+pub fn f16s(name: &str, shape: &[usize], v: &[f32]) -> T {
+    T {
+        name: name.into(),
+        dtype: "F16",
+        shape: shape.to_vec(),
+        data: v.iter().flat_map(|x| half::f16::from_f32(*x).to_le_bytes()).collect(),
+    }
+}
+
+pub fn bf16s(name: &str, shape: &[usize], v: &[f32]) -> T {
+    T {
+        name: name.into(),
+        dtype: "BF16",
+        shape: shape.to_vec(),
+        data: v.iter().flat_map(|x| half::bf16::from_f32(*x).to_le_bytes()).collect(),
+    }
+}
+
+/// Serialise tensors in the given order; the header is padded with spaces
+/// to a multiple of 8 bytes.
+pub fn st_bytes(tensors: &[T]) -> Vec<u8> {
+    let mut header = serde_json::Map::new();
+    let mut off = 0usize;
+    for t in tensors {
+        header.insert(
+            t.name.clone(),
+            serde_json::json!({"dtype": t.dtype, "shape": t.shape, "data_offsets": [off, off + t.data.len()]}),
+        );
+        off += t.data.len();
+    }
+    let mut h = serde_json::Value::Object(header).to_string().into_bytes();
+    while h.len() % 8 != 0 {
+        h.push(b' ');
+    }
+    let mut out = (h.len() as u64).to_le_bytes().to_vec();
+    out.extend(h);
+    for t in tensors {
+        out.extend(&t.data);
+    }
+    out
+}
+
+pub fn write_st(path: &Path, tensors: &[T]) {
+    std::fs::write(path, st_bytes(tensors)).unwrap();
+}
+
+/// Parse a safetensors file with the same public description: returns
+/// (name -> (dtype, shape, bytes)) and the metadata map.
+pub fn read_st(path: &Path) -> (std::collections::BTreeMap<String, (String, Vec<usize>, Vec<u8>)>, serde_json::Value) {
+    let bytes = std::fs::read(path).unwrap();
+    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+    let header: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n]).unwrap();
+    let data = &bytes[8 + n..];
+    let mut out = std::collections::BTreeMap::new();
+    let mut meta = serde_json::Value::Null;
+    for (k, v) in header.as_object().unwrap() {
+        if k == "__metadata__" {
+            meta = v.clone();
+            continue;
+        }
+        let o = v["data_offsets"].as_array().unwrap();
+        let (s, e) = (o[0].as_u64().unwrap() as usize, o[1].as_u64().unwrap() as usize);
+        let shape = v["shape"].as_array().unwrap().iter().map(|x| x.as_u64().unwrap() as usize).collect();
+        out.insert(k.clone(), (v["dtype"].as_str().unwrap().to_string(), shape, data[s..e].to_vec()));
+    }
+    (out, meta)
+}
+
+pub fn as_f32(bytes: &[u8]) -> Vec<f32> {
+    bytes.chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().unwrap())).collect()
+}
+
+/// Run the built `lopper` binary.
+pub fn lopper(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_lopper")).args(args).output().expect("run lopper")
+}
+
+pub fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+pub fn stdout(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+/// Is `CI=true` set? Then a missing reference is a failure, not a skip.
+pub fn in_ci() -> bool {
+    std::env::var("CI").map(|v| v == "true" || v == "1").unwrap_or(false)
+}
+
+/// `python3` with numpy and safetensors, or `None` (panics under CI).
+pub fn python_with_refs() -> Option<&'static str> {
+    let ok = Command::new("python3")
+        .args(["-c", "import numpy, safetensors"])
+        .output()
+        .map(|o| o.status.success())
+        .unwrap_or(false);
+    if ok {
+        return Some("python3");
+    }
+    let msg = "python3 with numpy and safetensors is needed: `python3 -m pip install numpy safetensors`";
+    if in_ci() {
+        panic!("{msg}");
+    }
+    eprintln!("skipping: {msg}");
+    None
+}
+
+/// Run a Python snippet with arguments; panics with its stderr on failure.
+pub fn python(code: &str, args: &[&str]) -> String {
+    let o = Command::new("python3").arg("-c").arg(code).args(args).output().expect("run python3");
+    assert!(o.status.success(), "python failed:\n{}", String::from_utf8_lossy(&o.stderr));
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+/// Deterministic pseudo-random values in [-1, 1) (SplitMix64).
+pub fn values(n: usize, seed: u64) -> Vec<f32> {
+    let mut s = seed;
+    (0..n)
+        .map(|_| {
+            s = s.wrapping_add(0x9E37_79B9_7F4A_7C15);
+            let mut z = s;
+            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+            z ^= z >> 31;
+            ((z >> 40) as f32 / (1u64 << 24) as f32) * 2.0 - 1.0
+        })
+        .collect()
+}
