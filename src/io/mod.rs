@@ -190,7 +190,7 @@ pub struct WriteError {
     kind: WriteErrorKind,
     detail: String,
     io: Option<std::io::Error>,
-    load: Option<LoadError>,
+    load: Option<Box<LoadError>>,
 }
 
 impl WriteError {
@@ -218,7 +218,7 @@ impl WriteError {
 
     pub(crate) fn load(path: &Path, err: LoadError) -> Self {
         let mut e = WriteError::new(path, WriteErrorKind::Load, format!("reading input: {err}"));
-        e.load = Some(err);
+        e.load = Some(Box::new(err));
         e
     }
 
@@ -244,7 +244,7 @@ impl WriteError {
 
     /// The read error behind a [`WriteErrorKind::Load`] error.
     pub fn load_error(&self) -> Option<&LoadError> {
-        self.load.as_ref()
+        self.load.as_deref()
     }
 }
 

@@ -372,7 +372,7 @@ mod tests {
         let written =
             write_model(&m, &dst, &repl(&[("a", &[0.0, -1.5])]), &meta(&[("lopper", "yes")]))
                 .unwrap();
-        assert_eq!(written, [dst.clone()]);
+        assert_eq!(written, std::slice::from_ref(&dst));
 
         // Hand-computed: `{` plus the metadata entry and its comma 47 bytes,
         // the `b` entry and its comma 53, the `a` entry and the closing `}}`
