@@ -67,8 +67,12 @@ pub fn is_float(dtype: Dtype) -> bool {
 /// Bytes taken by `numel` elements of `dtype`, or `None` on overflow or when
 /// sub-byte elements do not fill whole bytes.
 pub(crate) fn byte_len(dtype: Dtype, numel: usize) -> Option<usize> {
-    let bits = numel.checked_mul(dtype.bitsize())?;
-    (bits % 8 == 0).then_some(bits / 8)
+    let bits = dtype.bitsize();
+    if bits % 8 == 0 {
+        return numel.checked_mul(bits / 8);
+    }
+    let total = numel.checked_mul(bits)?;
+    (total % 8 == 0).then_some(total / 8)
 }
 
 /// Decode little-endian `bytes` of a float `dtype` into `out` (cleared
@@ -255,6 +259,8 @@ mod tests {
         assert_eq!(byte_len(Dtype::F4, 4), Some(2));
         assert_eq!(byte_len(Dtype::F4, 3), None);
         assert_eq!(byte_len(Dtype::F64, usize::MAX / 4), None);
+        assert_eq!(byte_len(Dtype::U8, usize::MAX), Some(usize::MAX));
+        assert_eq!(byte_len(Dtype::F4, usize::MAX / 2), None);
     }
 
     #[test]
