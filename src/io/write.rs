@@ -101,6 +101,9 @@ enum Job<'a> {
 ///
 /// `replaced` holds row-major values for the pruned tensors, encoded to each
 /// tensor's original dtype; every other tensor is copied byte for byte.
+/// Tensors are written in the input file's data-offset order, so the output
+/// is deterministic and, without replacements, byte-identical to an input
+/// whose header lists `__metadata__` first and tensors in offset order.
 /// `metadata` is merged into each file's `__metadata__`, winning over the
 /// input's values.
 ///
