@@ -1,0 +1,635 @@
+//! Writing a pruned model: atomic file writes and layout mirroring.
+//!
+//! Entry points: [`write_model`] and [`write_atomic`].
+//!
+//! Output format of every tensor file:
+//! - Tensors keep their names, shapes and dtypes and are written in the
+//!   input file's data-offset order, contiguously, so an unpruned model is
+//!   rewritten with every tensor at its original offset. The header lists
+//!   `__metadata__` first (input metadata merged with the caller's, the
+//!   caller's winning; keys sorted), then the tensors in that same order.
+//! - The header is padded with spaces to a multiple of 8 bytes, so the data
+//!   section starts 8-aligned (F32/F64 tensors after it stay aligned when
+//!   their offsets are).
+//! - Tensors not in `replaced` are copied byte for byte from the input map;
+//!   replaced tensors are encoded to their original dtype, rounding to
+//!   nearest even (see [`super::dtype`]).
+//!
+//! Key decisions: every value is validated and encoded, every output path
+//! checked, and every header built before the first byte is written; each
+//! file is then written by [`write_atomic`] (temp file in the target folder,
+//! fsync, rename), which never truncates a file another process, or our own
+//! mmap, is reading.
+
+use std::collections::{BTreeMap, HashSet};
+use std::fs::{File, OpenOptions};
+use std::io::{BufWriter, Write};
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use super::dtype::{encode_f64, EncodeError};
+use super::{Layout, Model, TensorFile, WriteError, WriteErrorKind as K};
+
+/// Write a file atomically: `write` fills a temp file created next to `path`,
+/// which is then flushed, fsynced and renamed over `path`. On any error the
+/// temp file is removed and `path` is left as it was.
+///
+/// # Errors
+/// [`K::BadOutput`] if `path` has no file name; [`K::Io`] naming `path` if
+/// creating, writing (including errors returned by `write`), syncing or
+/// renaming fails.
+pub fn write_atomic(
+    path: &Path,
+    write: impl FnOnce(&mut BufWriter<File>) -> std::io::Result<()>,
+) -> Result<(), WriteError> {
+    static COUNTER: AtomicUsize = AtomicUsize::new(0);
+    let Some(name) = path.file_name() else {
+        return Err(WriteError::new(path, K::BadOutput, "output path has no file name"));
+    };
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    let tmp = dir.join(format!(
+        ".{}.lopper-tmp-{}-{}",
+        name.to_string_lossy(),
+        std::process::id(),
+        COUNTER.fetch_add(1, Ordering::Relaxed)
+    ));
+    let file = OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&tmp)
+        .map_err(|e| WriteError::io(path, "create a temp file in its folder", e))?;
+    let result = (|| {
+        let mut w = BufWriter::new(file);
+        write(&mut w).map_err(|e| WriteError::io(path, "write", e))?;
+        let file = w.into_inner().map_err(|e| WriteError::io(path, "write", e.into_error()))?;
+        file.sync_all().map_err(|e| WriteError::io(path, "sync", e))?;
+        drop(file);
+        std::fs::rename(&tmp, path).map_err(|e| WriteError::io(path, "rename the temp file", e))
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_file(&tmp);
+        return result;
+    }
+    // Make the rename itself durable; not every platform can sync a folder.
+    #[cfg(unix)]
+    if let Ok(d) = File::open(dir) {
+        let _ = d.sync_all();
+    }
+    Ok(())
+}
+
+/// Where a planned output file gets its bytes.
+enum Job<'a> {
+    /// A tensor file: header bytes, then data parts in order.
+    Tensors { header: Vec<u8>, parts: Vec<&'a [u8]> },
+    /// A copy of an input file (index, config, tokenizer, …).
+    Copy(&'a Path),
+}
+
+/// Write a pruned copy of `model` to `out`, mirroring its layout, and return
+/// the files written.
+///
+/// - [`Layout::File`]: `out` is the output file.
+/// - [`Layout::Sharded`] or [`Layout::Directory`]: `out` is a directory
+///   (created if missing) that receives every shard under its own file name,
+///   the index copied unchanged (tensor names, dtypes and shapes, hence
+///   `total_size`, are unchanged), and, for a directory, every extra file
+///   (`config.json`, …) copied unchanged.
+///
+/// `replaced` holds row-major values for the pruned tensors, encoded to each
+/// tensor's original dtype; every other tensor is copied byte for byte.
+/// Tensors are written in the input file's data-offset order, so the output
+/// is deterministic and, without replacements, byte-identical to an input
+/// whose header lists `__metadata__` first and tensors in offset order.
+/// `metadata` is merged into each file's `__metadata__`, winning over the
+/// input's values.
+///
+/// # Errors
+/// Checked before anything is written: [`K::NoSuchTensor`],
+/// [`K::ShapeMismatch`], [`K::UnsupportedDtype`], [`K::NotRepresentable`]
+/// for `replaced`; [`K::WouldOverwriteInput`] if an output file, or the output
+/// directory, is one of [`Model::input_files`] (or the input directory);
+/// [`K::BadOutput`] if `out` is a directory where a file is needed or the
+/// reverse. While writing: [`K::Io`] (files already written stay complete).
+pub fn write_model(
+    model: &Model,
+    out: &Path,
+    replaced: &BTreeMap<String, Vec<f64>>,
+    metadata: &BTreeMap<String, String>,
+) -> Result<Vec<PathBuf>, WriteError> {
+    let encoded = encode_replaced(model, out, replaced)?;
+
+    // Plan: (target path, job) for every output file.
+    let (to_dir, inner, extra) = match model.layout() {
+        Layout::File(_) => (false, model.layout(), &[][..]),
+        Layout::Sharded { .. } => (true, model.layout(), &[][..]),
+        Layout::Directory { inner, extra_files, .. } => (true, &**inner, extra_files.as_slice()),
+    };
+    let target = |p: &Path| {
+        if to_dir {
+            out.join(p.file_name().unwrap_or_default())
+        } else {
+            out.to_owned()
+        }
+    };
+    let mut plan: Vec<(PathBuf, Job<'_>)> = Vec::new();
+    for f in model.files() {
+        plan.push((target(f.path()), tensor_job(f, &encoded, metadata)));
+    }
+    if let Layout::Sharded { index, .. } = inner {
+        plan.push((target(index), Job::Copy(index)));
+    }
+    for p in extra {
+        plan.push((target(p), Job::Copy(p)));
+    }
+
+    check_outputs(model, out, to_dir, plan.iter().map(|(p, _)| p.as_path()))?;
+
+    if to_dir {
+        std::fs::create_dir_all(out)
+            .map_err(|e| WriteError::io(out, "create the output directory", e))?;
+    }
+    let mut written = Vec::with_capacity(plan.len());
+    for (path, job) in plan {
+        match job {
+            Job::Tensors { header, parts } => write_atomic(&path, |w| {
+                w.write_all(&header)?;
+                parts.iter().try_for_each(|p| w.write_all(p))
+            })?,
+            Job::Copy(src) => {
+                let mut input = File::open(src)
+                    .map_err(|e| WriteError::load(&path, super::LoadError::io(src, "open", e)))?;
+                write_atomic(&path, |w| std::io::copy(&mut input, w).map(|_| ()))?;
+            }
+        }
+        written.push(path);
+    }
+    Ok(written)
+}
+
+/// Validate and encode every replacement to its tensor's dtype.
+fn encode_replaced<'a>(
+    model: &Model,
+    out: &Path,
+    replaced: &'a BTreeMap<String, Vec<f64>>,
+) -> Result<BTreeMap<&'a str, Vec<u8>>, WriteError> {
+    let mut encoded = BTreeMap::new();
+    for (name, values) in replaced {
+        let err = |kind, d: String| WriteError::new(out, kind, d).tensor(name);
+        let info = model
+            .get(name)
+            .ok_or_else(|| err(K::NoSuchTensor, "no such tensor in the input model".into()))?;
+        if values.len() != info.params() {
+            return Err(err(
+                K::ShapeMismatch,
+                format!(
+                    "{} values were given for shape {:?} ({} elements)",
+                    values.len(),
+                    info.shape,
+                    info.params()
+                ),
+            ));
+        }
+        let mut bytes = Vec::new();
+        match encode_f64(info.dtype, values, &mut bytes) {
+            Ok(()) => {}
+            Err(EncodeError::Unsupported) => {
+                return Err(err(
+                    K::UnsupportedDtype,
+                    format!("cannot write dtype {}; expected F16, BF16, F32 or F64", info.dtype),
+                ))
+            }
+            Err(EncodeError::NotRepresentable { index, value }) => {
+                return Err(err(
+                    K::NotRepresentable { index },
+                    format!(
+                        "value {value} at index {index} is not representable in {}",
+                        info.dtype
+                    ),
+                ))
+            }
+        }
+        encoded.insert(name.as_str(), bytes);
+    }
+    Ok(encoded)
+}
+
+/// The header and data parts of one output tensor file.
+fn tensor_job<'a>(
+    f: &'a TensorFile,
+    encoded: &'a BTreeMap<&str, Vec<u8>>,
+    metadata: &BTreeMap<String, String>,
+) -> Job<'a> {
+    let mut meta: BTreeMap<&str, &str> = BTreeMap::new();
+    if let Some(m) = f.metadata() {
+        meta.extend(m.iter().map(|(k, v)| (k.as_str(), v.as_str())));
+    }
+    meta.extend(metadata.iter().map(|(k, v)| (k.as_str(), v.as_str())));
+
+    let mut tensors = Vec::new();
+    let mut parts = Vec::new();
+    let mut offset = 0usize;
+    for name in f.names_in_file_order() {
+        let info = f.get(name).expect("names come from the file");
+        let bytes = match encoded.get(name) {
+            Some(b) => b.as_slice(),
+            None => f.bytes(name).expect("names come from the file"),
+        };
+        // Cannot overflow: the sum is the input's validated data length.
+        tensors.push((name, info.dtype.to_string(), &info.shape[..], offset, offset + bytes.len()));
+        offset += bytes.len();
+        parts.push(bytes);
+    }
+    Job::Tensors { header: header_bytes(&meta, &tensors), parts }
+}
+
+/// A header entry: name, dtype, shape, start, end.
+type HeaderEntry<'a> = (&'a str, String, &'a [usize], usize, usize);
+
+/// The 8-byte length prefix and the JSON header padded with spaces to a
+/// multiple of 8 bytes.
+fn header_bytes(meta: &BTreeMap<&str, &str>, tensors: &[HeaderEntry<'_>]) -> Vec<u8> {
+    let q = |s: &str| serde_json::to_string(s).expect("strings always serialize");
+    let mut items = Vec::with_capacity(tensors.len() + 1);
+    if !meta.is_empty() {
+        let kv: Vec<String> = meta.iter().map(|(k, v)| format!("{}:{}", q(k), q(v))).collect();
+        items.push(format!("\"__metadata__\":{{{}}}", kv.join(",")));
+    }
+    for (name, dtype, shape, start, end) in tensors {
+        let shape: Vec<String> = shape.iter().map(usize::to_string).collect();
+        items.push(format!(
+            "{}:{{\"dtype\":\"{dtype}\",\"shape\":[{}],\"data_offsets\":[{start},{end}]}}",
+            q(name),
+            shape.join(",")
+        ));
+    }
+    let mut json = format!("{{{}}}", items.join(",")).into_bytes();
+    json.resize(json.len().next_multiple_of(8), b' ');
+    let mut out = (json.len() as u64).to_le_bytes().to_vec();
+    out.extend_from_slice(&json);
+    out
+}
+
+/// `p` made canonical even if it does not exist yet: the canonical parent
+/// joined with the file name (or `p` itself when the parent is missing too,
+/// in which case it cannot be an existing input).
+fn canonical_target(p: &Path) -> PathBuf {
+    if let Ok(c) = p.canonicalize() {
+        return c;
+    }
+    match (p.parent(), p.file_name()) {
+        (Some(dir), Some(name)) => {
+            let dir = if dir.as_os_str().is_empty() { Path::new(".") } else { dir };
+            dir.canonicalize().map_or_else(|_| p.to_owned(), |d| d.join(name))
+        }
+        _ => p.to_owned(),
+    }
+}
+
+/// Refuse outputs that are inputs; check that `out` has the right kind.
+fn check_outputs<'p>(
+    model: &Model,
+    out: &Path,
+    to_dir: bool,
+    targets: impl Iterator<Item = &'p Path>,
+) -> Result<(), WriteError> {
+    let inputs: HashSet<PathBuf> = model.input_files().into_iter().collect();
+    let refuse = |p: &Path, what: &str| {
+        WriteError::new(
+            p,
+            K::WouldOverwriteInput,
+            format!("{what} of the input model; choose another output path"),
+        )
+    };
+    let out_c = canonical_target(out);
+    if inputs.contains(&out_c) {
+        return Err(refuse(out, "is an input file"));
+    }
+    if to_dir {
+        let mut dirs: HashSet<PathBuf> =
+            inputs.iter().filter_map(|p| p.parent().map(Path::to_owned)).collect();
+        if let Layout::Directory { dir, .. } = model.layout() {
+            dirs.extend(dir.canonicalize().ok());
+        }
+        if dirs.contains(&out_c) {
+            return Err(refuse(out, "is the directory"));
+        }
+    }
+    for t in targets {
+        if inputs.contains(&canonical_target(t)) {
+            return Err(refuse(t, "would overwrite an input file"));
+        }
+    }
+    match (to_dir, out.is_dir()) {
+        (false, true) => Err(WriteError::new(
+            out,
+            K::BadOutput,
+            "is a directory, but the input is a single file; give an output file path",
+        )),
+        (true, false) if out.exists() => Err(WriteError::new(
+            out,
+            K::BadOutput,
+            "is not a directory, but the input is sharded or a directory; give a directory path",
+        )),
+        _ => Ok(()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::io::file::tests::raw;
+    use crate::io::model::tests::sharded_dir;
+    use crate::io::testdir::TestDir;
+    use crate::io::Dtype;
+
+    fn meta(kv: &[(&str, &str)]) -> BTreeMap<String, String> {
+        kv.iter().map(|(k, v)| (k.to_string(), v.to_string())).collect()
+    }
+
+    fn repl(kv: &[(&str, &[f64])]) -> BTreeMap<String, Vec<f64>> {
+        kv.iter().map(|(k, v)| (k.to_string(), v.to_vec())).collect()
+    }
+
+    /// Assert `dir` holds exactly `names` (no temp files left behind).
+    fn assert_files(dir: &Path, names: &[&str]) {
+        assert_eq!(TestDir::list(dir), names, "files in {}", dir.display());
+    }
+
+    #[test]
+    fn golden_bytes_of_a_tiny_file() {
+        let d = TestDir::new("w-golden");
+        // Input: `b` (F16) stored before `a` (F32), header keys in another
+        // order, metadata with a key the caller overrides.
+        let input = r#"{"a":{"dtype":"F32","shape":[2],"data_offsets":[2,10]},"__metadata__":{"lopper":"old","format":"pt"},"b":{"dtype":"F16","shape":[1],"data_offsets":[0,2]}}"#;
+        let mut data = vec![0x00, 0x3c]; // b = 1.0 in F16
+        data.extend(1f32.to_le_bytes());
+        data.extend(2f32.to_le_bytes());
+        let src = d.join("in.safetensors");
+        std::fs::write(&src, raw(input, &data)).unwrap();
+        let m = Model::open(&src).unwrap();
+        let dst = d.join("out.safetensors");
+        let written =
+            write_model(&m, &dst, &repl(&[("a", &[0.0, -1.5])]), &meta(&[("lopper", "yes")]))
+                .unwrap();
+        assert_eq!(written, std::slice::from_ref(&dst));
+
+        // Hand-computed: `{` plus the metadata entry and its comma 47 bytes,
+        // the `b` entry and its comma 53, the `a` entry and the closing `}}`
+        // 54: 154 bytes, padded with 6 spaces to 160.
+        let header = r#"{"__metadata__":{"format":"pt","lopper":"yes"},"b":{"dtype":"F16","shape":[1],"data_offsets":[0,2]},"a":{"dtype":"F32","shape":[2],"data_offsets":[2,10]}}"#;
+        assert_eq!(header.len(), 154);
+        let mut want = 160u64.to_le_bytes().to_vec();
+        want.extend_from_slice(header.as_bytes());
+        want.extend_from_slice(b"      ");
+        want.extend_from_slice(&[0x00, 0x3c]); // b copied
+        want.extend_from_slice(&[0, 0, 0, 0]); // a[0] = +0.0
+        want.extend_from_slice(&[0, 0, 0xc0, 0xbf]); // a[1] = -1.5
+        assert_eq!(want.len(), 178);
+        assert_eq!(std::fs::read(&dst).unwrap(), want);
+        assert_files(d.path(), &["in.safetensors", "out.safetensors"]);
+    }
+
+    #[test]
+    fn round_trip_of_mixed_dtypes() {
+        let d = TestDir::new("w-roundtrip");
+        let f16 = |v: f32| half::f16::from_f32(v).to_le_bytes();
+        let bf16 = |v: f32| half::bf16::from_f32(v).to_le_bytes();
+        let header = r#"{"w32":{"dtype":"F32","shape":[2,2],"data_offsets":[0,16]},"w16":{"dtype":"F16","shape":[3],"data_offsets":[16,22]},"wb":{"dtype":"BF16","shape":[1,3],"data_offsets":[22,28]},"ids":{"dtype":"I64","shape":[2],"data_offsets":[28,44]}}"#;
+        let mut data: Vec<u8> =
+            [1.0f32, 2.0, 3.0, 4.0].iter().flat_map(|x| x.to_le_bytes()).collect();
+        for v in [0.5, -0.25, 8.0] {
+            data.extend(f16(v));
+        }
+        for v in [1.5, 0.0, -3.0] {
+            data.extend(bf16(v));
+        }
+        data.extend(7i64.to_le_bytes());
+        data.extend((-1i64).to_le_bytes());
+        let src = d.join("in.safetensors");
+        std::fs::write(&src, raw(header, &data)).unwrap();
+        let m = Model::open(&src).unwrap();
+        let dst = d.join("out.safetensors");
+        let r = repl(&[("w16", &[0.0, -0.25, 0.1]), ("wb", &[0.0, 0.0, 1.0 / 3.0])]);
+        write_model(&m, &dst, &r, &BTreeMap::new()).unwrap();
+
+        let back = Model::open(&dst).unwrap();
+        let infos: Vec<_> =
+            back.tensors().iter().map(|t| (t.name.clone(), t.dtype, t.shape.clone())).collect();
+        let want: Vec<_> =
+            m.tensors().iter().map(|t| (t.name.clone(), t.dtype, t.shape.clone())).collect();
+        assert_eq!(infos, want);
+        assert_eq!(back.get("wb").unwrap().dtype, Dtype::BF16);
+        assert_eq!(back.bytes("w32").unwrap(), m.bytes("w32").unwrap());
+        assert_eq!(back.bytes("ids").unwrap(), m.bytes("ids").unwrap());
+        assert_eq!(back.read_f64("w32").unwrap(), [1.0, 2.0, 3.0, 4.0]);
+        // 0.1 in F16 is 0x2e66 = 0.0999755859375 (nearest even of 0.1).
+        assert_eq!(back.read_f64("w16").unwrap(), [0.0, -0.25, 0.0999755859375]);
+        assert_eq!(back.bytes("w16").unwrap()[4..], 0x2e66u16.to_le_bytes());
+        // 1/3 in BF16 is 0x3eab = 0.333984375.
+        assert_eq!(back.read_f64("wb").unwrap(), [0.0, 0.0, 0.333984375]);
+        assert_eq!(back.zero_fraction("wb").unwrap(), 2.0 / 3.0);
+        assert!(back.file_of("w16").unwrap().metadata().is_none());
+        // No replacement: the whole file is rewritten byte-identical except
+        // for the header padding, which the input already had.
+        let same = d.join("same.safetensors");
+        write_model(&m, &same, &BTreeMap::new(), &BTreeMap::new()).unwrap();
+        assert_eq!(std::fs::read(&same).unwrap(), std::fs::read(&src).unwrap());
+    }
+
+    /// Seeded random files (dtypes, shapes including empty ones, header in
+    /// offset order, no metadata): rewriting with no replacement, or with
+    /// every float tensor replaced by its own decoded values, reproduces the
+    /// input byte for byte.
+    #[test]
+    fn random_files_round_trip_byte_exact() {
+        let d = TestDir::new("w-random");
+        // xorshift64, seed 42.
+        let mut s = 42u64;
+        let mut next = move || {
+            s ^= s << 13;
+            s ^= s >> 7;
+            s ^= s << 17;
+            s
+        };
+        let dtypes = [Dtype::F32, Dtype::F16, Dtype::BF16, Dtype::F64, Dtype::I64, Dtype::U8];
+        for case in 0..40 {
+            let mut header = Vec::new();
+            let mut data = Vec::new();
+            let ntensors = next() % 5;
+            for t in 0..ntensors {
+                let dtype = dtypes[(next() % dtypes.len() as u64) as usize];
+                let shape: Vec<usize> = (0..next() % 3).map(|_| (next() % 4) as usize).collect();
+                let n: usize = shape.iter().product();
+                let start = data.len();
+                if crate::io::dtype::is_float(dtype) {
+                    let v: Vec<f64> = (0..n)
+                        .map(|_| match next() % 4 {
+                            0 => 0.0,
+                            1 => -0.0,
+                            _ => (next() % 2001) as f64 / 250.0 - 4.0,
+                        })
+                        .collect();
+                    crate::io::dtype::encode_f64(dtype, &v, &mut data).unwrap();
+                } else {
+                    data.extend((0..n * dtype.bitsize() / 8).map(|_| next() as u8));
+                }
+                let dims: Vec<String> = shape.iter().map(|x| x.to_string()).collect();
+                header.push(format!(
+                    r#""t{t}":{{"dtype":"{dtype}","shape":[{}],"data_offsets":[{start},{}]}}"#,
+                    dims.join(","),
+                    data.len()
+                ));
+            }
+            let bytes = raw(&format!("{{{}}}", header.join(",")), &data);
+            let src = d.join(&format!("in{case}.safetensors"));
+            std::fs::write(&src, &bytes).unwrap();
+            let m = Model::open(&src).unwrap();
+            assert_eq!(m.tensors().len() as u64, ntensors);
+            let out = d.join(&format!("out{case}.safetensors"));
+            write_model(&m, &out, &BTreeMap::new(), &BTreeMap::new()).unwrap();
+            assert_eq!(std::fs::read(&out).unwrap(), bytes, "case {case}, copy");
+            let same: BTreeMap<String, Vec<f64>> = m
+                .tensors()
+                .iter()
+                .filter(|t| t.is_float())
+                .map(|t| (t.name.clone(), m.read_f64(&t.name).unwrap()))
+                .collect();
+            write_model(&m, &out, &same, &BTreeMap::new()).unwrap();
+            assert_eq!(std::fs::read(&out).unwrap(), bytes, "case {case}, re-encoded");
+        }
+    }
+
+    #[test]
+    fn sharded_round_trip() {
+        let src = TestDir::new("w-shard-src");
+        sharded_dir(src.path());
+        let dst = TestDir::new("w-shard-dst");
+        let out = dst.join("pruned");
+        let m = Model::open(src.path()).unwrap();
+        let written =
+            write_model(&m, &out, &repl(&[("b", &[0.0])]), &meta(&[("pruned", "b")])).unwrap();
+        assert_eq!(written.len(), 4);
+        assert_files(
+            &out,
+            &["config.json", "m-1.safetensors", "m-2.safetensors", "m.safetensors.index.json"],
+        );
+        for same in ["config.json", "m.safetensors.index.json"] {
+            assert_eq!(
+                std::fs::read(out.join(same)).unwrap(),
+                std::fs::read(src.join(same)).unwrap(),
+                "{same}"
+            );
+        }
+        let back = Model::open(&out).unwrap();
+        assert_eq!(back.read_f64("b").unwrap(), [0.0]);
+        assert_eq!(m.read_f64("b").unwrap(), [3.0]);
+        for t in ["a", "c"] {
+            assert_eq!(back.bytes(t).unwrap(), m.bytes(t).unwrap(), "{t}");
+        }
+        assert_eq!(back.file_of("a").unwrap().metadata().unwrap()["pruned"], "b");
+        // Writing into an existing (empty) directory works too.
+        let out2 = dst.join("again");
+        std::fs::create_dir(&out2).unwrap();
+        write_model(&m, &out2, &BTreeMap::new(), &BTreeMap::new()).unwrap();
+        assert_eq!(TestDir::list(&out2).len(), 4);
+    }
+
+    #[test]
+    fn refuses_to_overwrite_an_input_file() {
+        let d = TestDir::new("w-refuse-file");
+        let src = d.join("m.safetensors");
+        std::fs::write(&src, crate::io::model::tests::f32_file(&[("a", &[1.0])])).unwrap();
+        let before = std::fs::read(&src).unwrap();
+        let m = Model::open(&src).unwrap();
+        // Same file through a different spelling of the path.
+        let alias = d.path().join(".").join("m.safetensors");
+        let e = write_model(&m, &alias, &repl(&[("a", &[0.0])]), &BTreeMap::new()).unwrap_err();
+        assert_eq!(e.kind(), K::WouldOverwriteInput);
+        assert!(e.to_string().contains("m.safetensors: is an input file"), "{e}");
+        assert_eq!(std::fs::read(&src).unwrap(), before);
+        assert_files(d.path(), &["m.safetensors"]);
+        // A directory output for a single-file input is refused too.
+        let e = write_model(&m, d.path(), &BTreeMap::new(), &BTreeMap::new()).unwrap_err();
+        assert_eq!(e.kind(), K::BadOutput);
+    }
+
+    #[test]
+    fn refuses_to_overwrite_an_input_directory() {
+        let d = TestDir::new("w-refuse-dir");
+        sharded_dir(d.path());
+        let before: Vec<Vec<u8>> =
+            TestDir::list(d.path()).iter().map(|n| std::fs::read(d.join(n)).unwrap()).collect();
+        let m = Model::open(d.path()).unwrap();
+        let e =
+            write_model(&m, d.path(), &repl(&[("a", &[0.0, 0.0])]), &BTreeMap::new()).unwrap_err();
+        assert_eq!(e.kind(), K::WouldOverwriteInput);
+        assert!(e.to_string().contains("is the directory of the input model"), "{e}");
+        // The index opened directly: same directory as output.
+        let mi = Model::open(&d.join("m.safetensors.index.json")).unwrap();
+        let e = write_model(&mi, d.path(), &BTreeMap::new(), &BTreeMap::new()).unwrap_err();
+        assert_eq!(e.kind(), K::WouldOverwriteInput);
+        let after: Vec<Vec<u8>> =
+            TestDir::list(d.path()).iter().map(|n| std::fs::read(d.join(n)).unwrap()).collect();
+        assert_eq!(after, before);
+        assert_files(
+            d.path(),
+            &["config.json", "m-1.safetensors", "m-2.safetensors", "m.safetensors.index.json"],
+        );
+    }
+
+    #[test]
+    fn bad_replacements_write_nothing() {
+        let d = TestDir::new("w-bad-repl");
+        let header = r#"{"h":{"dtype":"F16","shape":[2],"data_offsets":[0,4]},"i":{"dtype":"I32","shape":[1],"data_offsets":[4,8]}}"#;
+        let src = d.join("in.safetensors");
+        std::fs::write(&src, raw(header, &[0; 8])).unwrap();
+        let m = Model::open(&src).unwrap();
+        let dst = d.join("out.safetensors");
+        let none = BTreeMap::new();
+        let e = write_model(&m, &dst, &repl(&[("h", &[1.0])]), &none).unwrap_err();
+        assert_eq!(e.kind(), K::ShapeMismatch);
+        assert!(
+            e.to_string()
+                .contains("out.safetensors: tensor 'h': 1 values were given for shape [2]"),
+            "{e}"
+        );
+        let e = write_model(&m, &dst, &repl(&[("h", &[1.0, 1e6])]), &none).unwrap_err();
+        assert_eq!(e.kind(), K::NotRepresentable { index: 1 });
+        assert!(
+            e.to_string().contains("value 1000000 at index 1 is not representable in F16"),
+            "{e}"
+        );
+        let e = write_model(&m, &dst, &repl(&[("h", &[f64::NAN, 0.0])]), &none).unwrap_err();
+        assert_eq!(e.kind(), K::NotRepresentable { index: 0 });
+        let e = write_model(&m, &dst, &repl(&[("i", &[1.0])]), &none).unwrap_err();
+        assert_eq!(e.kind(), K::UnsupportedDtype);
+        let e = write_model(&m, &dst, &repl(&[("zz", &[1.0])]), &none).unwrap_err();
+        assert_eq!(e.kind(), K::NoSuchTensor);
+        assert_files(d.path(), &["in.safetensors"]);
+    }
+
+    #[test]
+    fn write_atomic_cleans_up_on_error() {
+        let d = TestDir::new("w-atomic");
+        let p = d.join("x.bin");
+        std::fs::write(&p, b"old").unwrap();
+        let e = write_atomic(&p, |w| {
+            w.write_all(b"partial")?;
+            Err(std::io::Error::other("disk on fire"))
+        })
+        .unwrap_err();
+        assert_eq!(e.kind(), K::Io);
+        assert!(e.to_string().contains("x.bin: cannot write: disk on fire"), "{e}");
+        assert_eq!(std::fs::read(&p).unwrap(), b"old");
+        assert_files(d.path(), &["x.bin"]);
+        write_atomic(&p, |w| w.write_all(b"new")).unwrap();
+        assert_eq!(std::fs::read(&p).unwrap(), b"new");
+        assert_files(d.path(), &["x.bin"]);
+        let e = write_atomic(&d.join("missing/x.bin"), |_| Ok(())).unwrap_err();
+        assert_eq!(e.kind(), K::Io);
+    }
+}
