@@ -152,9 +152,7 @@ fn canonical(p: &Path) -> PathBuf {
 fn check_outputs(cfg: &PruneConfig, model: &Model) -> Result<(), Error> {
     let mut inputs: Vec<PathBuf> = model.input_files();
     inputs.push(canonical(&cfg.activations));
-    if let Some(dir) = model.directory() {
-        inputs.push(canonical(dir));
-    }
+    inputs.push(canonical(model.layout().root()));
     let mut outs = vec![("-o", &cfg.output)];
     if let Some(r) = &cfg.report {
         outs.push(("--report", r));
@@ -265,8 +263,11 @@ fn chunk_rows(width: usize) -> usize {
 
 /// Nonzeros of `values` once stored as `dtype` (a tiny kept weight can round
 /// to zero in F16/BF16, and the report counts what the file holds).
-fn stored_nonzeros(values: &[f64], dtype: safetensors::Dtype) -> usize {
-    values.iter().filter(|&&v| io::encodes_to_nonzero(v, dtype)).count()
+fn stored_nonzeros(values: &[f64], dtype: io::Dtype) -> Result<usize, String> {
+    let mut bytes = Vec::new();
+    io::dtype::encode_f64(dtype, values, &mut bytes).map_err(|e| e.to_string())?;
+    let zeros = io::dtype::count_zeros(dtype, &bytes).unwrap_or(0);
+    Ok(values.len() - zeros)
 }
 
 /// Result of pruning one layer.
@@ -340,7 +341,10 @@ fn prune_one(
             values.push(what[(r, c)]);
         }
     }
-    let kept = stored_nonzeros(&values, info.dtype);
+    let kept = stored_nonzeros(&values, info.dtype).map_err(|e| Error {
+        kind: ErrorKind::Solve,
+        message: format!("layer '{}': pruned weights cannot be stored as {:?}: {e}", info.name, info.dtype),
+    })?;
     let total = d_out * d_in;
     let si = pruned.info;
     let report = LayerReport {

@@ -73,7 +73,7 @@ pub struct PruneArgs {
     #[arg(long, value_name = "FILE")]
     pub activations: PathBuf,
     /// Fraction of weights to zero, in [0, 1).
-    #[arg(long, value_name = "S")]
+    #[arg(long, value_name = "S", allow_negative_numbers = true)]
     pub sparsity: Option<f64>,
     /// N:M pattern instead of --sparsity: at most N nonzeros in each group of
     /// M consecutive inputs of a row (e.g. 2:4).
@@ -97,11 +97,11 @@ pub struct PruneArgs {
     pub trace: Option<PathBuf>,
     /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto` to pick α per layer by
     /// held-out error.
-    #[arg(long, value_name = "ALPHA|auto", default_value = "0.01")]
+    #[arg(long, value_name = "ALPHA|auto", default_value = "0.01", allow_hyphen_values = true)]
     pub ridge: String,
     /// Fraction of activation rows held out from the solver to measure
     /// overfitting, in [0, 1).
-    #[arg(long, value_name = "F", default_value_t = 0.1)]
+    #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]
     pub holdout: f64,
     /// Prune only 2-D float tensors matching GLOB (repeatable).
     #[arg(long, value_name = "GLOB")]

@@ -42,10 +42,18 @@ impl From<pipeline::Error> for Failure {
 pub fn run() -> i32 {
     let cli = match Cli::try_parse() {
         Ok(c) => c,
-        Err(e) => {
-            let code = if e.use_stderr() { EXIT_USAGE } else { EXIT_OK };
+        Err(e) if !e.use_stderr() => {
+            // --help and --version.
             let _ = e.print();
-            return code;
+            return EXIT_OK;
+        }
+        Err(e) => {
+            // Clap's message is several lines (usage, tips); keep the first.
+            let text = e.render().to_string();
+            let first = text.lines().next().unwrap_or("invalid arguments");
+            let first = first.strip_prefix("error: ").unwrap_or(first);
+            eprintln!("lopper: error: {first} (see `lopper --help`)");
+            return EXIT_USAGE;
         }
     };
     let result = match cli.command {

@@ -137,6 +137,17 @@ pub enum EncodeError {
     },
 }
 
+impl std::fmt::Display for EncodeError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            EncodeError::Unsupported => f.write_str("the dtype is not a float type lopper writes"),
+            EncodeError::NotRepresentable { index, value } => {
+                write!(f, "value {value} at index {index} is not representable")
+            }
+        }
+    }
+}
+
 /// `v` rounded to `f32` with round-to-odd: truncate toward zero, then set the
 /// last mantissa bit if anything was lost.
 fn f32_round_to_odd(v: f64) -> f32 {
