@@ -143,7 +143,15 @@ fn prune_after_converting_to_half_precision() {
     let (orig, _) = read_st(&src.join("model.safetensors"));
     for (dtype, make) in [("F16", f16s as fn(&str, &[usize], &[f32]) -> T), ("BF16", bf16s)] {
         let model = dir.path(&format!("{dtype}.safetensors"));
-        let ts: Vec<T> = orig.iter().map(|(k, (_, shape, bytes))| make(k, shape, &as_f32(bytes))).collect();
+        // Float tensors change dtype; integer ones (position ids) are kept.
+        let ts: Vec<T> = orig
+            .iter()
+            .map(|(k, (dt, shape, bytes))| match dt.as_str() {
+                "F32" => make(k, shape, &as_f32(bytes)),
+                "I64" => T { name: k.clone(), dtype: "I64", shape: shape.clone(), data: bytes.clone() },
+                other => panic!("unexpected dtype {other} in the test model"),
+            })
+            .collect();
         write_st(&model, &ts);
         let acts = activations(&dir, &v, 300, make);
         let out = dir.path(&format!("{dtype}-out.safetensors"));
