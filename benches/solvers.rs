@@ -42,7 +42,11 @@ fn structured_gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
     let scale: Vec<f64> = (0..d)
         .map(|j| {
             let s = (10f64).powf(rng.uniform() * 2.0 - 1.0);
-            if j % 97 == 5 { 20.0 * s } else { s }
+            if j % 97 == 5 {
+                20.0 * s
+            } else {
+                s
+            }
         })
         .collect();
     let mut gram = Gram::new(d);
@@ -54,7 +58,8 @@ fn structured_gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
         for i in 0..m {
             let z: Vec<f64> = (0..rank).map(|_| rng.normal()).collect();
             for j in 0..d {
-                let shared: f64 = (0..rank).map(|k| z[k] * mix[(k, j)]).sum::<f64>() / (rank as f64).sqrt();
+                let shared: f64 =
+                    (0..rank).map(|k| z[k] * mix[(k, j)]).sum::<f64>() / (rank as f64).sqrt();
                 x[i * d + j] = scale[j] * (0.8 * shared + 0.6 * rng.normal());
             }
         }
@@ -95,7 +100,8 @@ fn main() {
         "lopper solver benchmark: {} cores, {rows} calibration rows, median of {reps}",
         std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
     );
-    let shapes: &[(usize, usize)] = if quick { &[(384, 1536)] } else { &[(1536, 1536), (384, 1536)] };
+    let shapes: &[(usize, usize)] =
+        if quick { &[(384, 1536)] } else { &[(1536, 1536), (384, 1536)] };
     let patterns = [
         ("50% per-row", Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }),
         ("90% per-row", Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }),
@@ -105,7 +111,10 @@ fn main() {
         let t = Instant::now();
         let h = structured_gram(rows, d_in, 11);
         let w = weights(d_out, d_in, 12);
-        println!("\n### layer {d_out} x {d_in} (statistics built in {:.2} s)\n", t.elapsed().as_secs_f64());
+        println!(
+            "\n### layer {d_out} x {d_in} (statistics built in {:.2} s)\n",
+            t.elapsed().as_secs_f64()
+        );
         let a = solve::regularised(h.as_ref(), solve::ridge_lambda(h.as_ref(), 0.01));
         let (t_chol, _) = time(reps, || a.llt(Side::Lower).map(|_| ()));
         println!("dense Cholesky of A ({d_in} x {d_in}): {:.4} s\n", t_chol);
@@ -114,9 +123,11 @@ fn main() {
         for (label, pattern) in patterns {
             for method in [Method::Magnitude, Method::Obs, Method::L0] {
                 let params = SolveParams { method, pattern, ..SolveParams::default() };
-                let (secs, pruned) =
-                    time(reps, || solve::prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap());
-                let err = objective::relative_error(w.as_ref(), pruned.weight.as_ref(), h.as_ref(), par);
+                let (secs, pruned) = time(reps, || {
+                    solve::prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap()
+                });
+                let err =
+                    objective::relative_error(w.as_ref(), pruned.weight.as_ref(), h.as_ref(), par);
                 println!(
                     "| {label} | {} | {secs:.3} | {:.1} | {err:.4e} | {} | {} |",
                     method.name(),

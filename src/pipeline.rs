@@ -186,7 +186,10 @@ fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Ve
     let names: Vec<&str> = all.iter().map(|t| t.name.as_str()).collect();
     let unmatched = cfg.selection.unmatched_only(&names);
     if let Some(g) = unmatched.first() {
-        return Err(Error::input(format!("--only '{g}' matches no tensor in {}", cfg.model.display())));
+        return Err(Error::input(format!(
+            "--only '{g}' matches no tensor in {}",
+            cfg.model.display()
+        )));
     }
     let selected: Vec<&TensorInfo> = all
         .into_iter()
@@ -334,7 +337,8 @@ fn prune_one(
     let pruned = solve::prune_layer(w.as_ref(), h, &params, par).map_err(solve_err)?;
     let what = pruned.weight;
     let rel_error = objective::relative_error(w.as_ref(), what.as_ref(), h, par);
-    let rel_error_holdout = held.map(|hh| objective::relative_error(w.as_ref(), what.as_ref(), hh, par));
+    let rel_error_holdout =
+        held.map(|hh| objective::relative_error(w.as_ref(), what.as_ref(), hh, par));
     let mut values = Vec::with_capacity(d_out * d_in);
     for r in 0..d_out {
         for c in 0..d_in {
@@ -343,7 +347,10 @@ fn prune_one(
     }
     let kept = stored_nonzeros(&values, info.dtype).map_err(|e| Error {
         kind: ErrorKind::Solve,
-        message: format!("layer '{}': pruned weights cannot be stored as {:?}: {e}", info.name, info.dtype),
+        message: format!(
+            "layer '{}': pruned weights cannot be stored as {:?}: {e}",
+            info.name, info.dtype
+        ),
     })?;
     let total = d_out * d_in;
     let si = pruned.info;
@@ -446,7 +453,8 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         outputs.push(path.display().to_string());
     }
     let summary = Summary::of(&layers, t0.elapsed().as_secs_f64());
-    let report = Report { settings, layers, summary, outputs, notice: VALIDATION_NOTICE.to_string() };
+    let report =
+        Report { settings, layers, summary, outputs, notice: VALIDATION_NOTICE.to_string() };
     if let Some(path) = &cfg.report {
         let json = report.to_json();
         io::write_atomic(path, |w| std::io::Write::write_all(w, json.as_bytes()))?;

@@ -90,7 +90,10 @@ mod tests {
     #[test]
     fn globs() {
         assert!(glob_match("*.weight", "a.b.weight"));
-        assert!(glob_match("encoder.layer.?.attention.*", "encoder.layer.3.attention.self.query.weight"));
+        assert!(glob_match(
+            "encoder.layer.?.attention.*",
+            "encoder.layer.3.attention.self.query.weight"
+        ));
         assert!(!glob_match("encoder.layer.?.x", "encoder.layer.10.x"));
         assert!(glob_match("*", ""));
         assert!(!glob_match("a*b", "acbd"));
@@ -99,7 +102,8 @@ mod tests {
 
     #[test]
     fn default_rule_on_bert_style_names() {
-        let yes = ["encoder.layer.0.attention.self.query.weight", "encoder.layer.5.output.dense.weight"];
+        let yes =
+            ["encoder.layer.0.attention.self.query.weight", "encoder.layer.5.output.dense.weight"];
         for n in yes {
             assert!(default_prunable(n, &[384, 384], true), "{n}");
         }

@@ -23,7 +23,10 @@ fn small_model(dir: &Scratch) -> (std::path::PathBuf, std::path::PathBuf) {
     let acts = dir.path("acts.safetensors");
     write_st(
         &acts,
-        &[f32s("enc.0.weight", &[40, 8], &values(320, 6)), f32s("enc.1.weight", &[40, 6], &values(240, 7))],
+        &[
+            f32s("enc.0.weight", &[40, 8], &values(320, 6)),
+            f32s("enc.1.weight", &[40, 6], &values(240, 7)),
+        ],
     );
     (model, acts)
 }
@@ -41,8 +44,11 @@ fn inspect_lists_tensors_and_prunable_flags() {
     let v: serde_json::Value = serde_json::from_str(&stdout(&o)).unwrap();
     let t = v["tensors"].as_array().unwrap();
     assert_eq!(t.len(), 6);
-    let prunable: Vec<&str> =
-        t.iter().filter(|x| x["prunable"].as_bool().unwrap()).map(|x| x["name"].as_str().unwrap()).collect();
+    let prunable: Vec<&str> = t
+        .iter()
+        .filter(|x| x["prunable"].as_bool().unwrap())
+        .map(|x| x["name"].as_str().unwrap())
+        .collect();
     assert_eq!(prunable, vec!["enc.0.weight", "enc.1.weight"]);
     let norm = t.iter().find(|x| x["name"] == "norm.weight").unwrap();
     assert_eq!(norm["params"], 6);
@@ -73,8 +79,19 @@ fn per_row_half_magnitude_by_hand() {
     let out = dir.path("out.safetensors");
     let report = dir.path("r.json");
     let o = lopper(&[
-        "prune", s(&model), "--activations", s(&acts), "--sparsity", "0.5", "--method", "magnitude",
-        "-o", s(&out), "--report", s(&report), "--quiet",
+        "prune",
+        s(&model),
+        "--activations",
+        s(&acts),
+        "--sparsity",
+        "0.5",
+        "--method",
+        "magnitude",
+        "-o",
+        s(&out),
+        "--report",
+        s(&report),
+        "--quiet",
     ]);
     assert!(o.status.success(), "{}", stderr(&o));
     assert!(stdout(&o).is_empty(), "--quiet prints nothing: {}", stdout(&o));
@@ -103,11 +120,23 @@ fn every_method_and_pattern_conforms_and_reports() {
     let (model, acts) = small_model(&dir);
     for method in ["magnitude", "scaled", "obs", "l0"] {
         for target in [["--sparsity", "0.5"], ["--pattern", "1:2"]] {
-            let out = dir.path(&format!("{method}-{}.safetensors", target[0].trim_start_matches('-')));
+            let out =
+                dir.path(&format!("{method}-{}.safetensors", target[0].trim_start_matches('-')));
             let rep = dir.path("rep.json");
             let o = lopper(&[
-                "prune", s(&model), "--activations", s(&acts), target[0], target[1], "--method", method,
-                "-o", s(&out), "--report", s(&rep), "--quiet",
+                "prune",
+                s(&model),
+                "--activations",
+                s(&acts),
+                target[0],
+                target[1],
+                "--method",
+                method,
+                "-o",
+                s(&out),
+                "--report",
+                s(&rep),
+                "--quiet",
             ]);
             assert!(o.status.success(), "{method}: {}", stderr(&o));
             let (t, _) = read_st(&out);
@@ -115,7 +144,11 @@ fn every_method_and_pattern_conforms_and_reports() {
                 let v = as_f32(&t[name].2);
                 for row in v.chunks(cols) {
                     // Both targets keep exactly half of every row here.
-                    assert_eq!(row.iter().filter(|x| **x != 0.0).count(), cols / 2, "{method} {name}");
+                    assert_eq!(
+                        row.iter().filter(|x| **x != 0.0).count(),
+                        cols / 2,
+                        "{method} {name}"
+                    );
                     if target[0] == "--pattern" {
                         for g in row.chunks(2) {
                             assert!(g.iter().filter(|x| **x != 0.0).count() <= 1);
@@ -128,7 +161,8 @@ fn every_method_and_pattern_conforms_and_reports() {
             for name in ["embed.weight", "enc.0.bias", "norm.weight", "head.weight"] {
                 assert_eq!(t[name], orig[name], "{name}");
             }
-            let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
+            let r: serde_json::Value =
+                serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
             assert_eq!(r["layers"].as_array().unwrap().len(), 2);
             assert!((r["summary"]["sparsity"].as_f64().unwrap() - 0.5).abs() < 1e-12);
         }
@@ -141,8 +175,19 @@ fn per_layer_scope_keeps_one_budget() {
     let (model, acts) = small_model(&dir);
     let out = dir.path("o.safetensors");
     let o = lopper(&[
-        "prune", s(&model), "--activations", s(&acts), "--sparsity", "0.75", "--scope", "layer",
-        "--method", "obs", "-o", s(&out), "--quiet",
+        "prune",
+        s(&model),
+        "--activations",
+        s(&acts),
+        "--sparsity",
+        "0.75",
+        "--scope",
+        "layer",
+        "--method",
+        "obs",
+        "-o",
+        s(&out),
+        "--quiet",
     ]);
     assert!(o.status.success(), "{}", stderr(&o));
     let (t, _) = read_st(&out);
@@ -172,8 +217,10 @@ fn bad_inputs_fail_cleanly() {
     let out = dir.path("out.safetensors");
     let o = s(&out).to_string();
     let base = |extra: &[&str]| -> Vec<String> {
-        let mut v: Vec<String> =
-            ["prune", &m, "--activations", &a, "-o", &o, "--quiet"].iter().map(|x| x.to_string()).collect();
+        let mut v: Vec<String> = ["prune", &m, "--activations", &a, "-o", &o, "--quiet"]
+            .iter()
+            .map(|x| x.to_string())
+            .collect();
         v.extend(extra.iter().map(|x| x.to_string()));
         v
     };
@@ -206,11 +253,23 @@ fn bad_inputs_fail_cleanly() {
     let mut v = base(&["--sparsity", "0.5"]);
     v[3] = s(&a2).into();
     run(v, &["a2.safetensors", "enc.1.weight"]);
-    write_st(&a2, &[f32s("enc.0.weight", &[40, 6], &values(240, 6)), f32s("enc.1.weight", &[40, 6], &values(240, 7))]);
+    write_st(
+        &a2,
+        &[
+            f32s("enc.0.weight", &[40, 6], &values(240, 6)),
+            f32s("enc.1.weight", &[40, 6], &values(240, 7)),
+        ],
+    );
     let mut v = base(&["--sparsity", "0.5"]);
     v[3] = s(&a2).into();
     run(v, &["enc.0.weight", "d_out=6", "d_in=8"]);
-    write_st(&a2, &[f32s("enc.0.weight", &[40, 5], &values(200, 6)), f32s("enc.1.weight", &[40, 6], &values(240, 7))]);
+    write_st(
+        &a2,
+        &[
+            f32s("enc.0.weight", &[40, 5], &values(200, 6)),
+            f32s("enc.1.weight", &[40, 6], &values(240, 7)),
+        ],
+    );
     let mut v = base(&["--sparsity", "0.5"]);
     v[3] = s(&a2).into();
     run(v, &["enc.0.weight", "neither"]);
@@ -225,7 +284,10 @@ fn bad_inputs_fail_cleanly() {
     run(v, &["nan.safetensors", "enc.0.weight", "NaN"]);
     let mut x = values(320, 6);
     x[33] = f32::INFINITY;
-    write_st(&a2, &[f32s("enc.0.weight", &[40, 8], &x), f32s("enc.1.weight", &[40, 6], &values(240, 7))]);
+    write_st(
+        &a2,
+        &[f32s("enc.0.weight", &[40, 8], &x), f32s("enc.1.weight", &[40, 6], &values(240, 7))],
+    );
     let mut v = base(&["--sparsity", "0.5"]);
     v[3] = s(&a2).into();
     run(v, &["a2.safetensors", "enc.0.weight", "nf"]);
@@ -255,14 +317,13 @@ fn broken_files_fail_cleanly() {
         ("tiny", vec![1, 2, 3], vec!["truncated"]),
         ("text", b"this is a plain text file, not safetensors at all....".to_vec(), vec![]),
         ("notjson", with_header("{not json", data), vec!["JSON"]),
-        (
-            "dtype",
-            with_header(&header.replacen("\"F32\"", "\"Q7\"", 1), data),
-            vec!["Q7"],
-        ),
+        ("dtype", with_header(&header.replacen("\"F32\"", "\"Q7\"", 1), data), vec!["Q7"]),
         (
             "outside",
-            with_header(r#"{"a.weight":{"dtype":"F32","shape":[2,2],"data_offsets":[0,16]}}"#, &[0u8; 8]),
+            with_header(
+                r#"{"a.weight":{"dtype":"F32","shape":[2,2],"data_offsets":[0,16]}}"#,
+                &[0u8; 8],
+            ),
             vec!["a.weight"],
         ),
         (
@@ -279,18 +340,40 @@ fn broken_files_fail_cleanly() {
         std::fs::write(&p, bytes).unwrap();
         let mut n = needles.clone();
         n.push(p.file_name().unwrap().to_str().unwrap());
-        fails(&dir, &["prune", s(&p), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&out)], &n);
+        fails(
+            &dir,
+            &["prune", s(&p), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&out)],
+            &n,
+        );
         fails(&dir, &["inspect", s(&p)], &n);
         std::fs::remove_file(&p).unwrap();
     }
     fails(
         &dir,
-        &["prune", s(&dir.path("missing.safetensors")), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&out)],
+        &[
+            "prune",
+            s(&dir.path("missing.safetensors")),
+            "--activations",
+            s(&acts),
+            "--sparsity",
+            "0.5",
+            "-o",
+            s(&out),
+        ],
         &["missing.safetensors"],
     );
     fails(
         &dir,
-        &["prune", s(&model), "--activations", s(&dir.path("nope.safetensors")), "--sparsity", "0.5", "-o", s(&out)],
+        &[
+            "prune",
+            s(&model),
+            "--activations",
+            s(&dir.path("nope.safetensors")),
+            "--sparsity",
+            "0.5",
+            "-o",
+            s(&out),
+        ],
         &["nope.safetensors"],
     );
 }
@@ -300,7 +383,10 @@ fn model_directory_with_shards_is_mirrored() {
     let dir = Scratch::new("shards");
     let src = dir.path("model");
     std::fs::create_dir(&src).unwrap();
-    write_st(&src.join("model-00001-of-00002.safetensors"), &[f32s("enc.0.weight", &[6, 8], &values(48, 2))]);
+    write_st(
+        &src.join("model-00001-of-00002.safetensors"),
+        &[f32s("enc.0.weight", &[6, 8], &values(48, 2))],
+    );
     write_st(
         &src.join("model-00002-of-00002.safetensors"),
         &[f32s("enc.1.weight", &[4, 6], &values(24, 4)), f32s("enc.1.bias", &[4], &values(4, 5))],
@@ -317,7 +403,17 @@ fn model_directory_with_shards_is_mirrored() {
     std::fs::write(src.join("config.json"), b"{\"hidden\": 8}\n").unwrap();
     let (_, acts) = small_model(&dir);
     let out = dir.path("pruned");
-    let o = lopper(&["prune", s(&src), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&out), "--quiet"]);
+    let o = lopper(&[
+        "prune",
+        s(&src),
+        "--activations",
+        s(&acts),
+        "--sparsity",
+        "0.5",
+        "-o",
+        s(&out),
+        "--quiet",
+    ]);
     assert!(o.status.success(), "{}", stderr(&o));
     for f in ["config.json", "model.safetensors.index.json"] {
         assert_eq!(std::fs::read(src.join(f)).unwrap(), std::fs::read(out.join(f)).unwrap(), "{f}");
@@ -327,7 +423,11 @@ fn model_directory_with_shards_is_mirrored() {
     assert_eq!(t2["enc.1.bias"], o2["enc.1.bias"]);
     assert_eq!(as_f32(&t2["enc.1.weight"].2).iter().filter(|x| **x == 0.0).count(), 12);
     // Pruning into the model's own directory is refused.
-    fails(&dir, &["prune", s(&src), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&src)], &["refusing"]);
+    fails(
+        &dir,
+        &["prune", s(&src), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&src)],
+        &["refusing"],
+    );
 }
 
 #[test]
@@ -335,17 +435,39 @@ fn half_precision_in_and_out() {
     let dir = Scratch::new("half");
     for (dtype, make) in [("F16", f16s as fn(&str, &[usize], &[f32]) -> T), ("BF16", bf16s)] {
         let model = dir.path(&format!("{dtype}.safetensors"));
-        write_st(&model, &[make("enc.0.weight", &[6, 8], &values(48, 2)), make("enc.0.bias", &[6], &values(6, 3))]);
+        write_st(
+            &model,
+            &[
+                make("enc.0.weight", &[6, 8], &values(48, 2)),
+                make("enc.0.bias", &[6], &values(6, 3)),
+            ],
+        );
         let acts = dir.path("acts16.safetensors");
         write_st(&acts, &[make("enc.0.weight", &[40, 8], &values(320, 6))]);
         let out = dir.path(&format!("{dtype}-out.safetensors"));
-        let o = lopper(&["prune", s(&model), "--activations", s(&acts), "--sparsity", "0.5", "--method", "obs", "-o", s(&out), "--quiet"]);
+        let o = lopper(&[
+            "prune",
+            s(&model),
+            "--activations",
+            s(&acts),
+            "--sparsity",
+            "0.5",
+            "--method",
+            "obs",
+            "-o",
+            s(&out),
+            "--quiet",
+        ]);
         assert!(o.status.success(), "{dtype}: {}", stderr(&o));
         let (t, _) = read_st(&out);
         let (orig, _) = read_st(&model);
         assert_eq!(t["enc.0.weight"].0, dtype);
         assert_eq!(t["enc.0.bias"], orig["enc.0.bias"]);
-        let nz = t["enc.0.weight"].2.chunks(2).filter(|c| u16::from_le_bytes([c[0], c[1]]) & 0x7fff != 0).count();
+        let nz = t["enc.0.weight"]
+            .2
+            .chunks(2)
+            .filter(|c| u16::from_le_bytes([c[0], c[1]]) & 0x7fff != 0)
+            .count();
         assert_eq!(nz, 24, "{dtype}");
     }
 }

@@ -45,8 +45,17 @@ save_file({
 
     let out = dir.path("out.safetensors");
     let o = lopper(&[
-        "prune", model.to_str().unwrap(), "--activations", acts.to_str().unwrap(), "--sparsity", "0.75",
-        "--method", "obs", "-o", out.to_str().unwrap(), "--quiet",
+        "prune",
+        model.to_str().unwrap(),
+        "--activations",
+        acts.to_str().unwrap(),
+        "--sparsity",
+        "0.75",
+        "--method",
+        "obs",
+        "-o",
+        out.to_str().unwrap(),
+        "--quiet",
     ]);
     assert!(o.status.success(), "{}", stderr(&o));
     // Reference reader: safetensors.safe_open on lopper's output.

@@ -9,7 +9,8 @@ use std::path::PathBuf;
 /// The model folder, or `None` (panics under CI, which must have it).
 fn model_dir() -> Option<PathBuf> {
     let dir = std::env::var_os("LOPPER_TEST_MODEL").map(PathBuf::from).unwrap_or_else(|| {
-        PathBuf::from(std::env::var_os("HOME").unwrap_or_default()).join(".cache/lopper/all-minilm-l6-v2")
+        PathBuf::from(std::env::var_os("HOME").unwrap_or_default())
+            .join(".cache/lopper/all-minilm-l6-v2")
     });
     if dir.join("model.safetensors").is_file() {
         return Some(dir);
@@ -71,10 +72,16 @@ fn inspect_finds_exactly_the_encoder_linears() {
 
 /// Structured activations: a shared low-rank part plus per-input scales,
 /// one tensor per encoder linear, `rows` rows.
-fn activations(dir: &Scratch, v: &serde_json::Value, rows: usize, make: fn(&str, &[usize], &[f32]) -> T) -> PathBuf {
+fn activations(
+    dir: &Scratch,
+    v: &serde_json::Value,
+    rows: usize,
+    make: fn(&str, &[usize], &[f32]) -> T,
+) -> PathBuf {
     let mut ts = Vec::new();
     for (i, name) in encoder_linears().iter().enumerate() {
-        let t = v["tensors"].as_array().unwrap().iter().find(|t| t["name"] == name.as_str()).unwrap();
+        let t =
+            v["tensors"].as_array().unwrap().iter().find(|t| t["name"] == name.as_str()).unwrap();
         let d_in = t["shape"][1].as_u64().unwrap() as usize;
         let z = values(rows * 8, 100 + i as u64);
         let mix = values(8 * d_in, 200 + i as u64);
@@ -103,8 +110,19 @@ fn prune_all_encoder_linears_f32() {
     let out = dir.path("pruned");
     let rep = dir.path("report.json");
     let o = lopper(&[
-        "prune", src.to_str().unwrap(), "--activations", acts.to_str().unwrap(), "--sparsity", "0.5",
-        "--method", "obs", "-o", out.to_str().unwrap(), "--report", rep.to_str().unwrap(), "--quiet",
+        "prune",
+        src.to_str().unwrap(),
+        "--activations",
+        acts.to_str().unwrap(),
+        "--sparsity",
+        "0.5",
+        "--method",
+        "obs",
+        "-o",
+        out.to_str().unwrap(),
+        "--report",
+        rep.to_str().unwrap(),
+        "--quiet",
     ]);
     assert!(o.status.success(), "{}", stderr(&o));
     let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
@@ -148,7 +166,9 @@ fn prune_after_converting_to_half_precision() {
             .iter()
             .map(|(k, (dt, shape, bytes))| match dt.as_str() {
                 "F32" => make(k, shape, &as_f32(bytes)),
-                "I64" => T { name: k.clone(), dtype: "I64", shape: shape.clone(), data: bytes.clone() },
+                "I64" => {
+                    T { name: k.clone(), dtype: "I64", shape: shape.clone(), data: bytes.clone() }
+                }
                 other => panic!("unexpected dtype {other} in the test model"),
             })
             .collect();
@@ -156,20 +176,37 @@ fn prune_after_converting_to_half_precision() {
         let acts = activations(&dir, &v, 300, make);
         let out = dir.path(&format!("{dtype}-out.safetensors"));
         let o = lopper(&[
-            "prune", model.to_str().unwrap(), "--activations", acts.to_str().unwrap(), "--pattern", "2:4",
-            "--only", "encoder.layer.0.*", "--only", "encoder.layer.5.*", "-o", out.to_str().unwrap(), "--quiet",
+            "prune",
+            model.to_str().unwrap(),
+            "--activations",
+            acts.to_str().unwrap(),
+            "--pattern",
+            "2:4",
+            "--only",
+            "encoder.layer.0.*",
+            "--only",
+            "encoder.layer.5.*",
+            "-o",
+            out.to_str().unwrap(),
+            "--quiet",
         ]);
         assert!(o.status.success(), "{dtype}: {}", stderr(&o));
         let (a, _) = read_st(&model);
         let (b, _) = read_st(&out);
         assert_eq!(a.keys().collect::<Vec<_>>(), b.keys().collect::<Vec<_>>());
-        let pruned: Vec<String> =
-            encoder_linears().into_iter().filter(|n| n.starts_with("encoder.layer.0.") || n.starts_with("encoder.layer.5.")).collect();
+        let pruned: Vec<String> = encoder_linears()
+            .into_iter()
+            .filter(|n| n.starts_with("encoder.layer.0.") || n.starts_with("encoder.layer.5."))
+            .collect();
         for (k, (dt, shape, bytes)) in &a {
             assert_eq!(&b[k].0, dt, "{k}");
             assert_eq!(&b[k].1, shape, "{k}");
             if pruned.contains(k) {
-                let vals: Vec<bool> = b[k].2.chunks(2).map(|c| u16::from_le_bytes([c[0], c[1]]) & 0x7fff != 0).collect();
+                let vals: Vec<bool> = b[k]
+                    .2
+                    .chunks(2)
+                    .map(|c| u16::from_le_bytes([c[0], c[1]]) & 0x7fff != 0)
+                    .collect();
                 for g in vals.chunks(4) {
                     assert!(g.iter().filter(|x| **x).count() <= 2, "{k}: 2:4 violated");
                 }

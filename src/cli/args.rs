@@ -21,7 +21,7 @@ pub enum Command {
     /// List a model's tensors and which of them lopper would prune.
     Inspect(InspectArgs),
     /// Prune a model's linear layers and write the pruned model and a report.
-    Prune(PruneArgs),
+    Prune(Box<PruneArgs>),
 }
 
 /// `lopper inspect`.

@@ -8,9 +8,11 @@ use crate::solve::{L0Params, Method, Pattern, Scope};
 
 /// Parse `N:M`.
 pub fn parse_pattern(s: &str) -> Result<(usize, usize), String> {
-    let bad = || format!("--pattern '{s}' is not of the form N:M with integers 0 < N <= M (e.g. 2:4)");
+    let bad =
+        || format!("--pattern '{s}' is not of the form N:M with integers 0 < N <= M (e.g. 2:4)");
     let (n, m) = s.split_once(':').ok_or_else(bad)?;
-    let (n, m): (usize, usize) = (n.trim().parse().map_err(|_| bad())?, m.trim().parse().map_err(|_| bad())?);
+    let (n, m): (usize, usize) =
+        (n.trim().parse().map_err(|_| bad())?, m.trim().parse().map_err(|_| bad())?);
     if n == 0 || m == 0 || n > m {
         return Err(bad());
     }

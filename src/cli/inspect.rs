@@ -39,11 +39,15 @@ pub(super) fn run(a: &InspectArgs) -> Result<(), Failure> {
     let infos = model.tensors();
     let names: Vec<&str> = infos.iter().map(|t| t.name.as_str()).collect();
     if let Some(g) = sel.unmatched_only(&names).first() {
-        return Err(Failure::usage(format!("--only '{g}' matches no tensor in {}", a.model.display())));
+        return Err(Failure::usage(format!(
+            "--only '{g}' matches no tensor in {}",
+            a.model.display()
+        )));
     }
     let mut rows = Vec::with_capacity(infos.len());
     for t in &infos {
-        let zero_fraction = model.zero_fraction(&t.name).map_err(|e| Failure::usage(e.to_string()))?;
+        let zero_fraction =
+            model.zero_fraction(&t.name).map_err(|e| Failure::usage(e.to_string()))?;
         rows.push(Row {
             name: t.name.clone(),
             dtype: format!("{:?}", t.dtype),
@@ -75,7 +79,11 @@ fn table(l: &Listing) -> String {
     use std::fmt::Write as _;
     let w = l.tensors.iter().map(|r| r.name.len()).max().unwrap_or(6).max(6);
     let mut s = String::new();
-    let _ = writeln!(s, "{:<w$}  {:<5}  {:>15}  {:>12}  {:>7}  {}", "tensor", "dtype", "shape", "params", "zeros", "prune");
+    let _ = writeln!(
+        s,
+        "{:<w$}  {:<5}  {:>15}  {:>12}  {:>7}  prune",
+        "tensor", "dtype", "shape", "params", "zeros"
+    );
     for r in &l.tensors {
         let shape = r.shape.iter().map(|d| d.to_string()).collect::<Vec<_>>().join("x");
         let _ = writeln!(

@@ -80,8 +80,10 @@ fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
         ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr())
     };
     bar.set_style(
-        ProgressStyle::with_template("{spinner} pruning {pos}/{len} layers [{elapsed_precise}] {wide_msg}")
-            .expect("valid template"),
+        ProgressStyle::with_template(
+            "{spinner} pruning {pos}/{len} layers [{elapsed_precise}] {wide_msg}",
+        )
+        .expect("valid template"),
     );
     let on_progress = |p: Progress<'_>| match p {
         Progress::Start(n) => bar.set_length(n as u64),

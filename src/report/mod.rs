@@ -11,7 +11,8 @@ use serde::Serialize;
 use std::fmt::Write as _;
 
 /// A reminder that calibration error is not model quality.
-pub const VALIDATION_NOTICE: &str = "Reconstruction error on calibration data does not show every way \
+pub const VALIDATION_NOTICE: &str =
+    "Reconstruction error on calibration data does not show every way \
 a pruned model can get worse: validate it on your own evaluation data before deploying.";
 
 /// How the run was set up.
@@ -150,7 +151,11 @@ impl Report {
             _ => String::new(),
         };
         let mut out = String::new();
-        let _ = writeln!(out, "lopper {} | method {} | {target} | ridge {}", s.tool_version, s.method, s.ridge);
+        let _ = writeln!(
+            out,
+            "lopper {} | method {} | {target} | ridge {}",
+            s.tool_version, s.method, s.ridge
+        );
         let wname = self.layers.iter().map(|l| l.name.len()).max().unwrap_or(5).max(5);
         let _ = writeln!(
             out,
@@ -252,7 +257,8 @@ mod tests {
             notice: VALIDATION_NOTICE.into(),
         };
         let v: serde_json::Value = serde_json::from_str(&r.to_json()).unwrap();
-        for k in ["name", "shape", "kept", "sparsity", "rel_error", "rel_error_holdout", "seconds"] {
+        for k in ["name", "shape", "kept", "sparsity", "rel_error", "rel_error_holdout", "seconds"]
+        {
             assert!(v["layers"][0].get(k).is_some(), "missing layers[].{k}");
         }
         for k in ["sparsity", "mean_rel_error", "mean_rel_error_holdout", "seconds"] {

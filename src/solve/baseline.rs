@@ -47,7 +47,11 @@ mod tests {
         // Input 1 is 10x louder than input 0, so its smaller weight survives.
         let w = faer::mat![[1.0, 0.5]];
         let h = faer::mat![[1.0, 0.0], [0.0, 100.0]];
-        let p = scaled(w.as_ref(), h.as_ref(), Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row });
+        let p = scaled(
+            w.as_ref(),
+            h.as_ref(),
+            Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row },
+        );
         assert_eq!(p.weight, faer::mat![[0.0, 0.5]]);
         let p = magnitude(w.as_ref(), Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row });
         assert_eq!(p.weight, faer::mat![[1.0, 0.0]]);

@@ -142,7 +142,7 @@ pub fn select(scores: MatRef<'_, f64>, pattern: Pattern) -> Mask {
         }
         Pattern::Unstructured { sparsity, scope: Scope::Layer } => {
             let k = budget::kept(sparsity, rows * cols);
-            let all: Vec<f64> = (0..rows).flat_map(|r| row_scores(r)).collect();
+            let all: Vec<f64> = (0..rows).flat_map(&row_scores).collect();
             for i in top_k(&all, k) {
                 mask.keep[i] = true;
             }

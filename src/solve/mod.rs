@@ -238,7 +238,9 @@ pub fn check_pattern(pattern: Pattern, d_in: usize) -> Result<(), SolveError> {
             }
             if d_in % m != 0 {
                 return Err(SolveError::BadPattern {
-                    reason: format!("pattern {n}:{m}: M={m} does not divide the input width {d_in}"),
+                    reason: format!(
+                        "pattern {n}:{m}: M={m} does not divide the input width {d_in}"
+                    ),
                 });
             }
         }

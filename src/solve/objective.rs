@@ -17,9 +17,7 @@ use faer::{Accum, Mat, MatRef, Par};
 pub fn row_quadratic_forms(d: MatRef<'_, f64>, m: MatRef<'_, f64>, par: Par) -> Vec<f64> {
     let mut dm = Mat::<f64>::zeros(d.nrows(), d.ncols());
     matmul(dm.as_mut(), Accum::Replace, d, m, 1.0, par);
-    (0..d.nrows())
-        .map(|r| (0..d.ncols()).map(|c| dm[(r, c)] * d[(r, c)]).sum())
-        .collect()
+    (0..d.nrows()).map(|r| (0..d.ncols()).map(|c| dm[(r, c)] * d[(r, c)]).sum()).collect()
 }
 
 /// `Σ_r (w_r − ŵ_r)ᵀ M (w_r − ŵ_r)`.
@@ -60,10 +58,12 @@ mod tests {
         let h = x.transpose() * &x;
         let y = &x * w.transpose();
         let yh = &x * what.transpose();
-        let num: f64 = (0..7).flat_map(|i| (0..2).map(move |r| (i, r)))
-            .map(|(i, r)| (y[(i, r)] - yh[(i, r)]).powi(2)).sum();
-        let den: f64 = (0..7).flat_map(|i| (0..2).map(move |r| (i, r)))
-            .map(|(i, r)| y[(i, r)].powi(2)).sum();
+        let num: f64 = (0..7)
+            .flat_map(|i| (0..2).map(move |r| (i, r)))
+            .map(|(i, r)| (y[(i, r)] - yh[(i, r)]).powi(2))
+            .sum();
+        let den: f64 =
+            (0..7).flat_map(|i| (0..2).map(move |r| (i, r))).map(|(i, r)| y[(i, r)].powi(2)).sum();
         let got = relative_error(w.as_ref(), what.as_ref(), h.as_ref(), Par::Seq);
         let want = num / den;
         assert!((got - want).abs() <= 1e-12 * want.max(1.0), "got {got}, want {want}");

@@ -108,7 +108,14 @@ pub fn sweep(
         }
         if b1 < d_in {
             let rest = w.as_mut().subcols_mut(b1, d_in - b1);
-            matmul(rest, Accum::Add, err.as_ref(), u.as_ref().submatrix(b0, b1, bw, d_in - b1), -1.0, par);
+            matmul(
+                rest,
+                Accum::Add,
+                err.as_ref(),
+                u.as_ref().submatrix(b0, b1, bw, d_in - b1),
+                -1.0,
+                par,
+            );
         }
         b0 = b1;
     }
@@ -184,7 +191,8 @@ mod tests {
             ((s >> 11) as f64 / (1u64 << 53) as f64) - 0.5
         };
         let z = Mat::from_fn(n, d, |_, _| next());
-        let x = Mat::from_fn(n, d, |i, j| z[(i, j)] + if j > 0 { 0.6 * z[(i, j - 1)] } else { 0.0 });
+        let x =
+            Mat::from_fn(n, d, |i, j| z[(i, j)] + if j > 0 { 0.6 * z[(i, j - 1)] } else { 0.0 });
         x.transpose() * &x
     }
 

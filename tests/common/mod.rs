@@ -54,7 +54,12 @@ pub struct T {
 
 pub fn f32s(name: &str, shape: &[usize], v: &[f32]) -> T {
     assert_eq!(shape.iter().product::<usize>(), v.len());
-    T { name: name.into(), dtype: "F32", shape: shape.to_vec(), data: v.iter().flat_map(|x| x.to_le_bytes()).collect() }
+    T {
+        name: name.into(),
+        dtype: "F32",
+        shape: shape.to_vec(),
+        data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+    }
 }
 
 pub fn f16s(name: &str, shape: &[usize], v: &[f32]) -> T {
@@ -105,7 +110,10 @@ pub fn write_st(path: &Path, tensors: &[T]) {
 
 /// Parse a safetensors file with the same public description: returns
 /// (name -> (dtype, shape, bytes)) and the metadata map.
-pub fn read_st(path: &Path) -> (std::collections::BTreeMap<String, (String, Vec<usize>, Vec<u8>)>, serde_json::Value) {
+/// Tensors by name: (dtype, shape, raw bytes).
+pub type Tensors = std::collections::BTreeMap<String, (String, Vec<usize>, Vec<u8>)>;
+
+pub fn read_st(path: &Path) -> (Tensors, serde_json::Value) {
     let bytes = std::fs::read(path).unwrap();
     let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
     let header: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n]).unwrap();
@@ -119,8 +127,12 @@ pub fn read_st(path: &Path) -> (std::collections::BTreeMap<String, (String, Vec<
         }
         let o = v["data_offsets"].as_array().unwrap();
         let (s, e) = (o[0].as_u64().unwrap() as usize, o[1].as_u64().unwrap() as usize);
-        let shape = v["shape"].as_array().unwrap().iter().map(|x| x.as_u64().unwrap() as usize).collect();
-        out.insert(k.clone(), (v["dtype"].as_str().unwrap().to_string(), shape, data[s..e].to_vec()));
+        let shape =
+            v["shape"].as_array().unwrap().iter().map(|x| x.as_u64().unwrap() as usize).collect();
+        out.insert(
+            k.clone(),
+            (v["dtype"].as_str().unwrap().to_string(), shape, data[s..e].to_vec()),
+        );
     }
     (out, meta)
 }
@@ -157,7 +169,8 @@ pub fn python_with_refs() -> Option<&'static str> {
     if ok {
         return Some("python3");
     }
-    let msg = "python3 with numpy and safetensors is needed: `python3 -m pip install numpy safetensors`";
+    let msg =
+        "python3 with numpy and safetensors is needed: `python3 -m pip install numpy safetensors`";
     if in_ci() {
         panic!("{msg}");
     }
