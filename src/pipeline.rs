@@ -252,11 +252,48 @@ fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Ve
                 w.name, cfg.holdout
             )));
         }
+        check_memory(&w.name, d_out, d_in, cfg.method, available_memory())?;
         solve::check_pattern(cfg.pattern, d_in)
             .map_err(|e| Error::input(format!("layer '{}' [{d_out}, {d_in}]: {e}", w.name)))?;
         jobs.push(Job { weight: w, rows });
     }
     Ok(jobs)
+}
+
+/// Bytes of memory the system can still hand out (`MemAvailable`), if known.
+fn available_memory() -> Option<u128> {
+    let text = std::fs::read_to_string("/proc/meminfo").ok()?;
+    let line = text.lines().find(|l| l.starts_with("MemAvailable:"))?;
+    let kib: u128 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kib * 1024)
+}
+
+/// Refuse a layer whose statistics and solver state cannot fit in memory.
+/// `need` counts the two Gram matrices, `W` and its pruned copy, plus the
+/// solver's own estimate.
+fn check_memory(
+    name: &str,
+    d_out: usize,
+    d_in: usize,
+    method: Method,
+    available: Option<u128>,
+) -> Result<(), Error> {
+    let need = 2 * (d_in as u128).pow(2) * 8
+        + 3 * d_out as u128 * d_in as u128 * 8
+        + solve::memory_estimate(d_out, d_in, method);
+    match available {
+        Some(avail) if need > avail => {
+            let gib = |b: u128| b as f64 / (1u128 << 30) as f64;
+            Err(Error::input(format!(
+                "layer '{name}' [{d_out}, {d_in}] needs about {:.1} GiB for its Gram matrices and \
+                 solver state, but only {:.1} GiB of memory is available; free memory or use a \
+                 lighter --method",
+                gib(need),
+                gib(avail)
+            )))
+        }
+        _ => Ok(()),
+    }
 }
 
 /// Rows per chunk when streaming activations (about 32 MiB of f64).
@@ -460,4 +497,32 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         io::write_atomic(path, |w| std::io::Write::write_all(w, json.as_bytes()))?;
     }
     Ok(report)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn memory_check_names_the_layer_and_sizes() {
+        // A 4096 x 11008 layer fits in 24 GiB with the local search...
+        let gib = 1u128 << 30;
+        assert!(check_memory("big", 4096, 11008, Method::L0, Some(24 * gib)).is_ok());
+        // ... but not in 4 GiB, and the message says why.
+        let e = check_memory("big", 4096, 11008, Method::L0, Some(4 * gib)).unwrap_err();
+        assert_eq!(e.kind(), ErrorKind::Input);
+        let m = e.to_string();
+        assert!(m.contains("'big' [4096, 11008]") && m.contains("4.0 GiB"), "{m}");
+        assert!(check_memory("x", 10, 10, Method::Obs, None).is_ok());
+    }
+
+    #[test]
+    fn outputs_must_differ_from_inputs_and_each_other() {
+        assert_eq!(
+            canonical(Path::new("Cargo.toml")),
+            Path::new("Cargo.toml").canonicalize().unwrap()
+        );
+        let c = canonical(Path::new("does-not-exist.safetensors"));
+        assert!(c.is_absolute() && c.ends_with("does-not-exist.safetensors"));
+    }
 }
