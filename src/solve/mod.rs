@@ -97,11 +97,32 @@ pub struct L0Params {
     pub max_seconds: Option<f64>,
     /// Record the objective after every sweep in [`SolveInfo::trace`].
     pub trace: bool,
+    /// Largest support refit by a dense per-row Cholesky solve of `A_SS`;
+    /// when some row keeps more, all rows are refit together by batched
+    /// conjugate gradients. Default 256.
+    pub chol_max: usize,
+    /// Relative residual `‖g_S‖ / ‖(A w)_S‖` at which a CG refit of a row
+    /// stops. Default `1e-10`.
+    pub cg_tol: f64,
+    /// Iteration cap of one CG refit. Default 500.
+    pub cg_max_iter: usize,
+    /// A move is accepted when it lowers the row objective by more than
+    /// `swap_tol · wᵀAw` (the objective of pruning the whole row). Default
+    /// `1e-12`.
+    pub swap_tol: f64,
 }
 
 impl Default for L0Params {
     fn default() -> Self {
-        L0Params { max_sweeps: 20, max_seconds: None, trace: false }
+        L0Params {
+            max_sweeps: 20,
+            max_seconds: None,
+            trace: false,
+            chol_max: 256,
+            cg_tol: 1e-10,
+            cg_max_iter: 500,
+            swap_tol: 1e-12,
+        }
     }
 }
 
@@ -146,8 +167,12 @@ pub struct SolveInfo {
     pub init: Option<&'static str>,
     /// Local-search sweeps run.
     pub sweeps: usize,
-    /// Swap moves accepted.
+    /// Swap moves accepted (per-layer scope: including moves of budget
+    /// between rows).
     pub swaps: usize,
+    /// Conjugate-gradient iterations spent in refits (0 when every refit was
+    /// a dense Cholesky solve).
+    pub refit_iterations: usize,
     /// Objective after every sweep (when tracing), starting with the initial one.
     pub trace: Vec<f64>,
 }
