@@ -110,6 +110,10 @@ pub struct L0Params {
     /// `swap_tol · wᵀAw` (the objective of pruning the whole row). Default
     /// `1e-12`.
     pub swap_tol: f64,
+    /// Rows keeping at most this many weights also try swaps priced with
+    /// the refit ([`l0::exact`]) once the cheap swaps stop improving; cost
+    /// `2 d_in k²` per row and sweep. Default 64.
+    pub exact_max_k: usize,
 }
 
 impl Default for L0Params {
@@ -122,6 +126,7 @@ impl Default for L0Params {
             cg_tol: 1e-10,
             cg_max_iter: 500,
             swap_tol: 1e-12,
+            exact_max_k: 64,
         }
     }
 }

@@ -50,6 +50,7 @@
 //! Everything is f64: gradients, dot products and objectives accumulate in
 //! f64, which is what lets `Δ` be trusted down to `tol`.
 
+pub mod exact;
 pub mod refit;
 pub mod swap;
 
@@ -323,7 +324,8 @@ pub fn solve(
             let _ = delta;
         }
 
-        let swaps = sweep_rows(&prob, &mut state, &active, &tol, pattern, par);
+        let exact_k = params.l0.exact_max_k.min(params.l0.chol_max);
+        let swaps = sweep_rows(&prob, &mut state, &active, &changed, &tol, pattern, exact_k, par);
         for r in 0..d_out {
             info.swaps += swaps[r];
             if swaps[r] > 0 {
@@ -341,31 +343,46 @@ pub fn solve(
         }
         cg_iters += refit_rows(&prob, &mut state, &changed, params, par)?;
 
-        // Keep the best state: every move and refit lowers f exactly, so an
-        // increase can only be rounding; restore such rows.
-        let restore: Vec<usize> = (0..d_out).filter(|&r| state.f[r] > prev_f[r]).collect();
-        let restore_layer = layer && state.total() > prev_f.iter().sum::<f64>();
-        for r in 0..d_out {
-            if restore_layer || restore.contains(&r) {
-                debug_assert!(
-                    state.f[r] <= prev_f[r] + 1e-9 * prob.dense[r].max(f64::MIN_POSITIVE),
-                    "row {r}: objective rose from {} to {}",
-                    prev_f[r],
-                    state.f[r]
-                );
-                let rg = r * d_in..(r + 1) * d_in;
-                state.w_hat[rg.clone()].copy_from_slice(&prev_w[rg.clone()]);
-                state.keep[rg.clone()].copy_from_slice(&prev_keep[rg.clone()]);
-                state.f[r] = refit::gradient_row(
-                    a,
-                    &prob.w[rg.clone()],
-                    &prob.b[rg.clone()],
-                    &state.w_hat[rg.clone()],
-                    &state.keep[rg.clone()],
-                    &mut state.g[rg],
-                );
-                active[r] = false;
+        // Keep the best state: every move and refit lowers f exactly (per
+        // row, or in total for per-layer scope, where a donor row rises), so
+        // an increase can only be rounding; restore the rows it affects.
+        let restore: Vec<usize> = if layer {
+            let (now, before) = (state.total(), prev_f.iter().sum::<f64>());
+            debug_assert!(
+                now <= before + 1e-9 * prob.dense.iter().sum::<f64>(),
+                "objective rose from {before} to {now}"
+            );
+            if now > before {
+                (0..d_out).collect()
+            } else {
+                Vec::new()
             }
+        } else {
+            (0..d_out)
+                .filter(|&r| {
+                    debug_assert!(
+                        state.f[r] <= prev_f[r] + 1e-9 * prob.dense[r],
+                        "row {r}: objective rose from {} to {}",
+                        prev_f[r],
+                        state.f[r]
+                    );
+                    state.f[r] > prev_f[r]
+                })
+                .collect()
+        };
+        for r in restore {
+            let rg = r * d_in..(r + 1) * d_in;
+            state.w_hat[rg.clone()].copy_from_slice(&prev_w[rg.clone()]);
+            state.keep[rg.clone()].copy_from_slice(&prev_keep[rg.clone()]);
+            state.f[r] = refit::gradient_row(
+                a,
+                &prob.w[rg.clone()],
+                &prob.b[rg.clone()],
+                &state.w_hat[rg.clone()],
+                &state.keep[rg.clone()],
+                &mut state.g[rg],
+            );
+            active[r] = false;
         }
         if params.l0.trace {
             info.trace.push(state.total());
@@ -392,12 +409,15 @@ fn rows_mut(state: &mut State, d_in: usize) -> Vec<RowMut<'_>> {
 
 /// One swap sweep over the active rows, in blocks of [`ROW_BLOCK`] rows.
 /// Returns the swaps accepted per row.
+#[allow(clippy::too_many_arguments)]
 fn sweep_rows(
     prob: &Problem<'_>,
     state: &mut State,
     active: &[bool],
+    moved: &[bool],
     tol: &[f64],
     pattern: Pattern,
+    exact_max_k: usize,
     par: Par,
 ) -> Vec<usize> {
     let d_in = prob.d_in;
@@ -430,6 +450,23 @@ fn sweep_rows(
                 for (bi, (row, &i)) in rows.iter_mut().zip(&ids).enumerate() {
                     let av = &mut avail[bi * d_in..(bi + 1) * d_in];
                     sw[i] = swap::apply_row(prob.a, &prob.inv_diag, row, &mut cands[bi], row_tol[bi], av).0;
+                }
+            }
+        }
+        // Rows where the cheap swaps found nothing sit at a refit optimum
+        // (unless a budget move just touched them): price swaps exactly.
+        let group = match pattern {
+            Pattern::NofM { m, .. } => Some(m),
+            Pattern::Unstructured { .. } => None,
+        };
+        for (row, &i) in rows.iter_mut().zip(&ids) {
+            if sw[i] > 0 || moved[r0 + i] || row.keep.iter().filter(|&&k| k).count() > exact_max_k {
+                continue;
+            }
+            if let Some(c) = exact::best_swap(prob.a, row, group) {
+                if c.delta < -tol[r0 + i] {
+                    exact::flip(prob.a, row, c);
+                    sw[i] = 1;
                 }
             }
         }
@@ -493,6 +530,8 @@ pub(crate) mod tests {
 
     /// Optimal value on support `s` (row-local indices): `wᵀAw − b_Sᵀ A_SS⁻¹ b_S`,
     /// by a dense LU solve (a different factorisation from the solver's).
+    pub(crate) fn support_value_pub(a: &Mat<f64>, w: &[f64], s: &[usize]) -> f64 { support_value(a, w, s) }
+    pub(crate) fn subsets_pub(d: usize, k: usize) -> Vec<Vec<usize>> { subsets(d, k) }
     fn support_value(a: &Mat<f64>, w: &[f64], s: &[usize]) -> f64 {
         let d = w.len();
         let b: Vec<f64> = (0..d).map(|i| (0..d).map(|j| a[(i, j)] * w[j]).sum()).collect();
@@ -707,5 +746,46 @@ pub(crate) mod tests {
         let (rate, gap) = tally.report();
         assert!(rate >= 0.9, "l0 optimal on only {:.0}% of instances", 100.0 * rate);
         assert!(gap < 0.01, "mean gap {gap:.3e} ≥ 1%");
+    }
+}
+#[cfg(test)]
+mod probe {
+    use super::tests::*;
+    use super::*;
+    #[test]
+    fn probe_exact_swaps() {
+        let d = 16;
+        let mut rng = Lcg::new(2024);
+        let (mut rows_fail, mut rows_fix, mut rows) = (0, 0, 0);
+        for seed in 0..8 {
+            for alpha in [0.0, 0.01] {
+                let (x, w, lambda) = instance(&mut rng, 24 + seed, d, 3, alpha);
+                let mut a = x.transpose() * &x;
+                for j in 0..d { a[(j, j)] += lambda; }
+                for sparsity in [0.5, 0.75, 0.875] {
+                    let pattern = Pattern::Unstructured { sparsity, scope: Scope::Row };
+                    let k = budget::kept(sparsity, d);
+                    let p = SolveParams { method: super::super::Method::L0, pattern, ..SolveParams::default() };
+                    let got = solve(w.as_ref(), a.as_ref(), &p, Par::Seq).unwrap();
+                    let all = subsets_pub(d, k);
+                    for r in 0..3 {
+                        rows += 1;
+                        let wr: Vec<f64> = (0..d).map(|c| w[(r, c)]).collect();
+                        let opt = all.iter().map(|s| support_value_pub(&a, &wr, s)).fold(f64::INFINITY, f64::min);
+                        let s: Vec<usize> = (0..d).filter(|&c| got.weight[(r, c)] != 0.0).collect();
+                        let cur = support_value_pub(&a, &wr, &s);
+                        if cur > opt * (1.0 + 1e-6) {
+                            rows_fail += 1;
+                            let mut best = cur;
+                            for &i in &s { for j in 0..d { if s.contains(&j) { continue; }
+                                let t: Vec<usize> = s.iter().map(|&q| if q == i { j } else { q }).collect();
+                                best = best.min(support_value_pub(&a, &wr, &t)); } }
+                            if best < cur * (1.0 - 1e-9) { rows_fix += 1; }
+                        }
+                    }
+                }
+            }
+        }
+        println!("rows {rows} failing {rows_fail} exact-swap-improvable {rows_fix}");
     }
 }
