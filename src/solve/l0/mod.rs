@@ -789,3 +789,77 @@ mod probe {
         println!("rows {rows} failing {rows_fail} exact-swap-improvable {rows_fix}");
     }
 }
+
+#[cfg(test)]
+mod bench {
+    use super::tests::Lcg;
+    use super::*;
+    use crate::solve::objective::relative_error;
+    use crate::solve::{prune_layer, regularised, ridge_lambda, Method};
+
+    /// A 1536 x 1536 layer with 16k calibration rows of structured
+    /// activations: 8 shared latent factors, a moving-average correlation
+    /// between neighbouring inputs, log-normal channel scales and 1% outlier
+    /// channels 10x louder. Run with
+    /// `cargo test --release --lib bench_1536 -- --ignored --nocapture`.
+    #[test]
+    #[ignore]
+    fn bench_1536() {
+        let (n, d) = (16384, 1536);
+        let par = Par::rayon(0);
+        let mut rng = Lcg::new(1);
+        let t = Instant::now();
+        let load = Mat::from_fn(8, d, |_, _| rng.normal());
+        let scale: Vec<f64> = (0..d)
+            .map(|_| {
+                let s = (0.5 * rng.normal()).exp();
+                if rng.uniform() < 0.01 {
+                    10.0 * s
+                } else {
+                    s
+                }
+            })
+            .collect();
+        let u = Mat::from_fn(n, 8, |_, _| rng.normal());
+        let z = Mat::from_fn(n, d + 1, |_, _| rng.normal());
+        let mut x = Mat::<f64>::zeros(n, d);
+        matmul(x.as_mut(), Accum::Replace, u.as_ref(), load.as_ref(), 0.5, par);
+        for j in 0..d {
+            for i in 0..n {
+                x[(i, j)] = scale[j] * (x[(i, j)] + z[(i, j + 1)] + 0.6 * z[(i, j)]);
+            }
+        }
+        let mut h = Mat::<f64>::zeros(d, d);
+        matmul(h.as_mut(), Accum::Replace, x.transpose(), x.as_ref(), 1.0, par);
+        drop((x, z, u));
+        let w = Mat::from_fn(d, d, |_, _| rng.normal() / (d as f64).sqrt());
+        println!("setup {:.2}s", t.elapsed().as_secs_f64());
+        let lambda = ridge_lambda(h.as_ref(), 0.01);
+        let a = regularised(h.as_ref(), lambda);
+        for sparsity in [0.9, 0.5] {
+            let pattern = Pattern::Unstructured { sparsity, scope: Scope::Row };
+            let mut params = SolveParams { pattern, ridge_alpha: 0.01, ..SolveParams::default() };
+            let t = Instant::now();
+            let ob = prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap();
+            let t_obs = t.elapsed().as_secs_f64();
+            let e_obs = relative_error(w.as_ref(), ob.weight.as_ref(), h.as_ref(), par);
+            params.method = Method::L0;
+            params.l0.trace = true;
+            let t = Instant::now();
+            let l0 = prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap();
+            let t_l0 = t.elapsed().as_secs_f64();
+            let e_l0 = relative_error(w.as_ref(), l0.weight.as_ref(), h.as_ref(), par);
+            let _ = &a;
+            println!(
+                "sparsity {sparsity}: obs {t_obs:.2}s err {e_obs:.4e} | l0 {t_l0:.2}s ({:.1}x) err {e_l0:.4e} ({:+.1}%) init {:?} sweeps {} swaps {} cg {}",
+                t_l0 / t_obs,
+                100.0 * (e_l0 / e_obs - 1.0),
+                l0.info.init,
+                l0.info.sweeps,
+                l0.info.swaps,
+                l0.info.refit_iterations
+            );
+            println!("  trace {:?}", l0.info.trace);
+        }
+    }
+}

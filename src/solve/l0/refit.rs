@@ -134,6 +134,9 @@ pub(crate) fn gradient_all(prob: &Problem<'_>, state: &mut State, par: Par) {
 /// Batched Jacobi-preconditioned CG on all rows with `rows[r]` set, warm
 /// started from `state.w_hat` (which must be zero off the support and have a
 /// consistent `state.g`). Returns the iterations run.
+///
+/// Search directions are stored only for rows still iterating (compacted as
+/// rows converge), so the product `Q = P A` shrinks with the active set.
 pub(crate) fn pcg(
     prob: &Problem<'_>,
     state: &mut State,
@@ -143,75 +146,82 @@ pub(crate) fn pcg(
     par: Par,
 ) -> usize {
     let (d_out, d_in) = (prob.d_out, prob.d_in);
-    let n = d_out * d_in;
     let inv = &prob.inv_diag;
-    // Per-row stop threshold ‖g_S‖² ≤ tol² ‖b_S‖².
-    let mut thresh = vec![0.0; d_out];
-    let mut active = rows.to_vec();
-    let mut rz = vec![0.0; d_out];
-    let mut p = vec![0.0; n];
-    let mut q = vec![0.0; n];
     let masked_sq = |r: usize, x: &[f64], keep: &[bool]| -> f64 {
-        (0..d_in).filter(|&j| keep[r * d_in + j]).map(|j| x[r * d_in + j].powi(2)).sum()
+        let rg = r * d_in..(r + 1) * d_in;
+        x[rg.clone()].iter().zip(&keep[rg]).filter(|(_, &k)| k).map(|(v, _)| v * v).sum()
     };
+    // Active rows with their stop threshold ‖g_S‖² ≤ tol² ‖b_S‖² and r·z.
+    let mut act: Vec<(usize, f64, f64)> = Vec::new();
     for r in 0..d_out {
-        if !active[r] {
+        if !rows[r] {
             continue;
         }
-        thresh[r] = tol * tol * masked_sq(r, &prob.b, &state.keep);
-        let res = masked_sq(r, &state.g, &state.keep);
-        if res <= thresh[r] {
-            active[r] = false;
-            continue;
+        let thresh = tol * tol * masked_sq(r, &prob.b, &state.keep);
+        if masked_sq(r, &state.g, &state.keep) > thresh {
+            act.push((r, thresh, 0.0));
         }
-        // z = −g_S / diag(A); p = z; rz = (−g_S)·z.
-        let mut s = 0.0;
-        for j in r * d_in..(r + 1) * d_in {
-            if state.keep[j] {
-                let z = -state.g[j] * inv[j % d_in];
-                p[j] = z;
-                s += -state.g[j] * z;
-            }
-        }
-        rz[r] = s;
     }
+    let mut p = vec![0.0; act.len() * d_in];
+    for (slot, (r, _, rz)) in act.iter_mut().enumerate() {
+        // z = −g_S / diag(A); p = z; rz = (−g_S)·z.
+        let (rg, pr) = (*r * d_in..(*r + 1) * d_in, &mut p[slot * d_in..(slot + 1) * d_in]);
+        let mut s = 0.0;
+        for ((pj, (&gj, &kj)), &ij) in pr.iter_mut().zip(state.g[rg.clone()].iter().zip(&state.keep[rg])).zip(inv) {
+            if kj {
+                *pj = -gj * ij;
+                s += gj * gj * ij;
+            }
+        }
+        *rz = s;
+    }
+    let mut q = vec![0.0; act.len() * d_in];
     let mut iters = 0;
-    while iters < max_iter && active.iter().any(|&x| x) {
+    while iters < max_iter && !act.is_empty() {
         iters += 1;
-        matmul(view_mut(&mut q, d_out, d_in), Accum::Replace, view(&p, d_out, d_in), prob.a, 1.0, par);
-        for r in 0..d_out {
-            if !active[r] {
-                continue;
-            }
+        let na = act.len();
+        matmul(
+            view_mut(&mut q[..na * d_in], na, d_in),
+            Accum::Replace,
+            view(&p[..na * d_in], na, d_in),
+            prob.a,
+            1.0,
+            par,
+        );
+        let mut next = 0;
+        for slot in 0..na {
+            let (r, thresh, rz) = act[slot];
             let rg = r * d_in..(r + 1) * d_in;
-            let pq: f64 = p[rg.clone()].iter().zip(&q[rg.clone()]).map(|(x, y)| x * y).sum();
-            if !(pq > 0.0) {
-                active[r] = false;
-                p[rg].fill(0.0);
+            let ps = slot * d_in..(slot + 1) * d_in;
+            let pq: f64 = p[ps.clone()].iter().zip(&q[ps.clone()]).map(|(x, y)| x * y).sum();
+            if pq.is_nan() || pq <= 0.0 {
                 continue;
             }
-            let alpha = rz[r] / pq;
+            let alpha = rz / pq;
             // ŵ += α p (zero off S), g += α q (everywhere: g = A ŵ − b).
-            axpy(&mut state.w_hat[rg.clone()], alpha, &p[rg.clone()]);
-            axpy(&mut state.g[rg.clone()], alpha, &q[rg.clone()]);
-            let res = masked_sq(r, &state.g, &state.keep);
-            if res <= thresh[r] {
-                active[r] = false;
-                p[rg].fill(0.0);
+            axpy(&mut state.w_hat[rg.clone()], alpha, &p[ps.clone()]);
+            axpy(&mut state.g[rg.clone()], alpha, &q[ps.clone()]);
+            if masked_sq(r, &state.g, &state.keep) <= thresh {
                 continue;
             }
             let mut s = 0.0;
-            for j in rg.clone() {
-                if state.keep[j] {
-                    s += state.g[j] * state.g[j] * inv[j % d_in];
+            for ((&gj, &kj), &ij) in state.g[rg.clone()].iter().zip(&state.keep[rg.clone()]).zip(inv) {
+                if kj {
+                    s += gj * gj * ij;
                 }
             }
-            let beta = s / rz[r];
-            rz[r] = s;
-            for j in rg {
-                p[j] = if state.keep[j] { -state.g[j] * inv[j % d_in] + beta * p[j] } else { 0.0 };
+            let beta = s / rz;
+            // Row stays active: write its new direction into slot `next`.
+            let pn = next * d_in;
+            for (c, ((&gj, &kj), &ij)) in
+                state.g[rg.clone()].iter().zip(&state.keep[rg.clone()]).zip(inv).enumerate()
+            {
+                p[pn + c] = if kj { -gj * ij + beta * p[ps.start + c] } else { 0.0 };
             }
+            act[next] = (r, thresh, s);
+            next += 1;
         }
+        act.truncate(next);
     }
     gradient_all(prob, state, par);
     iters
