@@ -16,69 +16,261 @@
 //!
 //! One factorisation of `A_SS` (`k³/3`), its inverse (`k³`) and the product
 //! `V` (`2 (d_in − k) k²`, faer matmul) price all `k·(d_in − k)` swaps
-//! exactly. That is more than a sweep of the fixed-others swaps in
+//! exactly, and small blocks of several swaps at once (the same formulas
+//! with `M_RR`, `V_{J,R}` in place of scalars) cost O(k) more each. That is
+//! more than a sweep of the fixed-others swaps in
 //! [`super::swap`] (O(k·d_in)), so these moves are used once the cheap ones
 //! stop improving, and only on rows with `k ≤ L0Params::exact_max_k`.
 
 use super::col;
-use super::swap::{Cand, RowMut};
+use super::swap::RowMut;
 use faer::linalg::matmul::matmul;
 use faer::linalg::solvers::DenseSolveCore;
 use faer::{Accum, Mat, MatRef, Par, Side};
 
-/// The best exact swap of a row at a refit optimum; `group` restricts `j` to
-/// the N:M group of `i` (width `group`), `None` allows any `j ∉ S`.
-pub(crate) fn best_swap(a: MatRef<'_, f64>, row: &RowMut<'_>, group: Option<usize>) -> Option<Cand> {
-    let d = row.keep.len();
-    let s: Vec<usize> = (0..d).filter(|&c| row.keep[c]).collect();
-    let out: Vec<usize> = (0..d).filter(|&c| !row.keep[c]).collect();
-    let k = s.len();
-    if k == 0 || out.is_empty() {
-        return None;
+/// Swaps of a single pair ranked for the pairwise search in
+/// [`best_move`]: the `TOP` best ones are combined two at a time.
+const TOP: usize = 8;
+
+/// An exact move: prune `out`, keep `inn` (same length), objective change
+/// `delta` after the refit.
+#[derive(Clone, Debug)]
+pub(crate) struct Move {
+    pub delta: f64,
+    pub out: Vec<usize>,
+    pub inn: Vec<usize>,
+}
+
+/// Everything needed to price moves from one refit optimum.
+struct Priced {
+    s: Vec<usize>,
+    out: Vec<usize>,
+    /// `M = A_SS⁻¹`.
+    m: Mat<f64>,
+    /// `A_{Sᶜ,S}`, rows in the order of `out`.
+    aos: Mat<f64>,
+    /// `V = A_{Sᶜ,S} M`.
+    v: Mat<f64>,
+    /// Schur complements `s_j` w.r.t. `S`, in the order of `out`.
+    schur: Vec<f64>,
+}
+
+impl Priced {
+    fn new(a: MatRef<'_, f64>, keep: &[bool]) -> Option<Self> {
+        let d = keep.len();
+        let s: Vec<usize> = (0..d).filter(|&c| keep[c]).collect();
+        let out: Vec<usize> = (0..d).filter(|&c| !keep[c]).collect();
+        let k = s.len();
+        if k == 0 || out.is_empty() {
+            return None;
+        }
+        let ass = Mat::from_fn(k, k, |p, q| a[(s[p], s[q])]);
+        let m = ass.llt(Side::Lower).ok()?.inverse();
+        let aos = Mat::from_fn(out.len(), k, |q, p| col(a, s[p])[out[q]]);
+        let mut v = Mat::<f64>::zeros(out.len(), k);
+        matmul(v.as_mut(), Accum::Replace, aos.as_ref(), m.as_ref(), 1.0, Par::Seq);
+        let schur = (0..out.len())
+            .map(|q| {
+                let j = out[q];
+                a[(j, j)] - (0..k).map(|p| v[(q, p)] * aos[(q, p)]).sum::<f64>()
+            })
+            .collect();
+        Some(Priced { s, out, m, aos, v, schur })
     }
-    let ass = Mat::from_fn(k, k, |p, q| a[(s[p], s[q])]);
-    let m = ass.llt(Side::Lower).ok()?.inverse();
-    let aos = Mat::from_fn(out.len(), k, |q, p| col(a, s[p])[out[q]]);
-    let mut v = Mat::<f64>::zeros(out.len(), k);
-    matmul(v.as_mut(), Accum::Replace, aos.as_ref(), m.as_ref(), 1.0, Par::Seq);
-    let schur: Vec<f64> = (0..out.len())
-        .map(|q| {
-            let j = out[q];
-            a[(j, j)] - (0..k).map(|p| v[(q, p)] * aos[(q, p)]).sum::<f64>()
-        })
-        .collect();
-    let mut best: Option<Cand> = None;
-    for (p, &i) in s.iter().enumerate() {
-        let wi = row.w_hat[i];
-        let mpp = m[(p, p)];
-        let cost = wi * wi / mpp;
-        let scale = wi / mpp;
-        for (q, &j) in out.iter().enumerate() {
-            if group.is_some_and(|gw| j / gw != i / gw) {
-                continue;
+
+    /// `Δ` of the single swap `S[p]` out, `out[q]` in.
+    fn single(&self, row: &RowMut<'_>, p: usize, q: usize) -> f64 {
+        let wi = row.w_hat[self.s[p]];
+        let mpp = self.m[(p, p)];
+        let vq = self.v[(q, p)];
+        let gj = row.g[self.out[q]] - wi / mpp * vq;
+        let sj = self.schur[q] + vq * vq / mpp;
+        if sj > 0.0 {
+            wi * wi / mpp - gj * gj / sj
+        } else {
+            f64::INFINITY
+        }
+    }
+
+    /// `Δ` of pruning `S[ps]` and keeping `out[qs]` (block form of
+    /// [`Priced::single`]):
+    /// `Δ = ŵ_Rᵀ M_RR⁻¹ ŵ_R − g'_Jᵀ S'_JJ⁻¹ g'_J` with
+    /// `g'_J = g_J − V_{J,R} M_RR⁻¹ ŵ_R` and
+    /// `S'_JJ = A_JJ − A_{J,S} M A_{S,J} + V_{J,R} M_RR⁻¹ V_{J,R}ᵀ`.
+    fn block(&self, a: MatRef<'_, f64>, row: &RowMut<'_>, ps: &[usize], qs: &[usize]) -> f64 {
+        let (r, t, k) = (ps.len(), qs.len(), self.s.len());
+        let mut mrr: Vec<f64> = (0..r * r).map(|e| self.m[(ps[e / r], ps[e % r])]).collect();
+        let l = match cholesky(&mut mrr, r) {
+            Some(()) => mrr,
+            None => return f64::INFINITY,
+        };
+        let mut y: Vec<f64> = ps.iter().map(|&p| row.w_hat[self.s[p]]).collect();
+        let cost: f64 = {
+            let w_r = y.clone();
+            solve(&l, r, &mut y);
+            w_r.iter().zip(&y).map(|(a, b)| a * b).sum()
+        };
+        let gp: Vec<f64> = qs
+            .iter()
+            .map(|&q| row.g[self.out[q]] - (0..r).map(|x| self.v[(q, ps[x])] * y[x]).sum::<f64>())
+            .collect();
+        // Z = M_RR⁻¹ V_{J,R}ᵀ, column per addition.
+        let z: Vec<Vec<f64>> = qs
+            .iter()
+            .map(|&q| {
+                let mut c: Vec<f64> = ps.iter().map(|&p| self.v[(q, p)]).collect();
+                solve(&l, r, &mut c);
+                c
+            })
+            .collect();
+        let mut sjj = vec![0.0; t * t];
+        for (x1, &q1) in qs.iter().enumerate() {
+            for (x2, &q2) in qs.iter().enumerate() {
+                let (j1, j2) = (self.out[q1], self.out[q2]);
+                let cross: f64 = (0..k).map(|p| self.v[(q1, p)] * self.aos[(q2, p)]).sum();
+                let back: f64 = (0..r).map(|x| self.v[(q1, ps[x])] * z[x2][x]).sum();
+                sjj[x1 * t + x2] = a[(j1, j2)] - cross + back;
             }
-            let vq = v[(q, p)];
-            let gj = row.g[j] - scale * vq;
-            let sj = schur[q] + vq * vq / mpp;
-            if !(sj > 0.0) {
-                continue;
+        }
+        if cholesky(&mut sjj, t).is_none() {
+            return f64::INFINITY;
+        }
+        let mut u = gp.clone();
+        solve(&sjj, t, &mut u);
+        cost - gp.iter().zip(&u).map(|(a, b)| a * b).sum::<f64>()
+    }
+}
+
+/// In-place lower Cholesky of a small `n x n` row-major SPD matrix.
+fn cholesky(m: &mut [f64], n: usize) -> Option<()> {
+    for j in 0..n {
+        let mut d = m[j * n + j];
+        for c in 0..j {
+            d -= m[j * n + c] * m[j * n + c];
+        }
+        if d.is_nan() || d <= 0.0 {
+            return None;
+        }
+        let d = d.sqrt();
+        m[j * n + j] = d;
+        for i in j + 1..n {
+            let mut x = m[i * n + j];
+            for c in 0..j {
+                x -= m[i * n + c] * m[j * n + c];
             }
-            let delta = cost - gj * gj / sj;
-            if best.is_none_or(|b| delta < b.delta) {
-                best = Some(Cand { delta, out: i, inn: j });
+            m[i * n + j] = x / d;
+        }
+    }
+    Some(())
+}
+
+/// Solve `L Lᵀ x = b` in place with the factor from [`cholesky`].
+fn solve(l: &[f64], n: usize, b: &mut [f64]) {
+    for i in 0..n {
+        let mut x = b[i];
+        for c in 0..i {
+            x -= l[i * n + c] * b[c];
+        }
+        b[i] = x / l[i * n + i];
+    }
+    for i in (0..n).rev() {
+        let mut x = b[i];
+        for c in i + 1..n {
+            x -= l[c * n + i] * b[c];
+        }
+        b[i] = x / l[i * n + i];
+    }
+}
+
+/// The best exact move of a row at a refit optimum.
+///
+/// Atomic moves: every single swap (unstructured, `group = None`) or every
+/// other choice of the kept set inside one group (N:M, `group = Some(m)`).
+/// Besides the best atomic move, every pair of the [`TOP`] best atomic moves
+/// with disjoint indices (and distinct groups) is priced jointly: two moves
+/// can improve together when neither does alone.
+pub(crate) fn best_move(a: MatRef<'_, f64>, row: &RowMut<'_>, group: Option<usize>) -> Option<Move> {
+    let pr = Priced::new(a, row.keep)?;
+    let mut best: Option<Move> = None;
+    let mut consider = |delta: f64, ps: &[usize], qs: &[usize]| {
+        if best.as_ref().is_none_or(|b| delta < b.delta) {
+            best = Some(Move {
+                delta,
+                out: ps.iter().map(|&p| pr.s[p]).collect(),
+                inn: qs.iter().map(|&q| pr.out[q]).collect(),
+            });
+        }
+    };
+    // Atomic moves (Δ, removed positions in S, added positions in Sᶜ,
+    // group), best first; only the `TOP` best are kept for pairing.
+    let mut top: Vec<(f64, Vec<usize>, Vec<usize>, usize)> = Vec::with_capacity(TOP + 1);
+    let mut push = |delta: f64, ps: Vec<usize>, qs: Vec<usize>, grp: usize| {
+        if top.len() < TOP || delta < top[TOP - 1].0 {
+            let at = top.partition_point(|e| e.0 <= delta);
+            top.insert(at, (delta, ps, qs, grp));
+            top.truncate(TOP);
+        }
+    };
+    match group {
+        None => {
+            for p in 0..pr.s.len() {
+                for q in 0..pr.out.len() {
+                    push(pr.single(row, p, q), vec![p], vec![q], usize::MAX);
+                }
+            }
+        }
+        Some(m) => {
+            let d = row.keep.len();
+            let mut pos = vec![usize::MAX; d];
+            for (p, &c) in pr.s.iter().enumerate() {
+                pos[c] = p;
+            }
+            for (q, &c) in pr.out.iter().enumerate() {
+                pos[c] = q;
+            }
+            for g0 in (0..d).step_by(m) {
+                let cur: u32 = (0..m).filter(|&c| row.keep[g0 + c]).fold(0, |acc, c| acc | 1 << c);
+                for t in 0u32..1 << m {
+                    if t == cur || t.count_ones() != cur.count_ones() {
+                        continue;
+                    }
+                    let bits = |x: u32| (0..m).filter(move |&c| (x >> c) & 1 == 1).map(|c| pos[g0 + c]);
+                    let ps: Vec<usize> = bits(cur & !t).collect();
+                    let qs: Vec<usize> = bits(t & !cur).collect();
+                    let delta = if ps.len() == 1 { pr.single(row, ps[0], qs[0]) } else { pr.block(a, row, &ps, &qs) };
+                    push(delta, ps, qs, g0);
+                }
+            }
+        }
+    }
+    if let Some((delta, ps, qs, _)) = top.first() {
+        consider(*delta, ps, qs);
+    }
+    for x in 0..top.len() {
+        for y in x + 1..top.len() {
+            let (a1, a2) = (&top[x], &top[y]);
+            let disjoint = a1.1.iter().all(|p| !a2.1.contains(p)) && a1.2.iter().all(|q| !a2.2.contains(q));
+            if disjoint && (a1.3 == usize::MAX || a1.3 != a2.3) {
+                let ps: Vec<usize> = a1.1.iter().chain(&a2.1).copied().collect();
+                let qs: Vec<usize> = a1.2.iter().chain(&a2.2).copied().collect();
+                consider(pr.block(a, row, &ps, &qs), &ps, &qs);
             }
         }
     }
     best
 }
 
-/// Flip the support for the swap `c` (`i` out, `j` in at value 0), keeping
-/// `g = A (ŵ − w)` consistent; the caller refits the row, which lands on
-/// `f(S) + c.delta`.
-pub(crate) fn flip(a: MatRef<'_, f64>, row: &mut RowMut<'_>, c: Cand) {
-    let wi = row.w_hat[c.out];
-    super::refit::axpy(row.g, -wi, col(a, c.out));
-    row.w_hat[c.out] = 0.0;
-    row.keep[c.out] = false;
-    row.keep[c.inn] = true;
+/// Flip the support for move `mv`, keeping `g = A (ŵ − w)` consistent (the
+/// new weights start at 0); the caller refits the row, which lands on
+/// `f(S) + mv.delta`.
+pub(crate) fn flip(a: MatRef<'_, f64>, row: &mut RowMut<'_>, mv: &Move) {
+    for &i in &mv.out {
+        let wi = row.w_hat[i];
+        super::refit::axpy(row.g, -wi, col(a, i));
+        row.w_hat[i] = 0.0;
+        row.keep[i] = false;
+    }
+    for &j in &mv.inn {
+        row.keep[j] = true;
+    }
 }

@@ -463,10 +463,10 @@ fn sweep_rows(
             if sw[i] > 0 || moved[r0 + i] || row.keep.iter().filter(|&&k| k).count() > exact_max_k {
                 continue;
             }
-            if let Some(c) = exact::best_swap(prob.a, row, group) {
-                if c.delta < -tol[r0 + i] {
-                    exact::flip(prob.a, row, c);
-                    sw[i] = 1;
+            if let Some(mv) = exact::best_move(prob.a, row, group) {
+                if mv.delta < -tol[r0 + i] {
+                    exact::flip(prob.a, row, &mv);
+                    sw[i] = mv.out.len();
                 }
             }
         }
