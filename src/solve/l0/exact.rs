@@ -260,6 +260,45 @@ pub(crate) fn best_move(a: MatRef<'_, f64>, row: &RowMut<'_>, group: Option<usiz
     best
 }
 
+/// Exact budget prices of a row at a refit optimum: the cheapest removal
+/// `(ŵ_i² / M_ii, i)` and the best addition `(g_j² / s_j, j)`, both with the
+/// other kept weights refit.
+pub(crate) type Prices = (Option<(f64, usize)>, Option<(f64, usize)>);
+
+/// See [`Prices`].
+pub(crate) fn budget_prices(a: MatRef<'_, f64>, row: &RowMut<'_>) -> Prices {
+    let d = row.keep.len();
+    let k = row.keep.iter().filter(|&&x| x).count();
+    if k == 0 {
+        // Nothing to remove; adding j alone gains g_j² / A_jj exactly.
+        let add = (0..d).map(|j| (row.g[j] * row.g[j] / a[(j, j)], j)).max_by(|p, q| p.0.total_cmp(&q.0));
+        return (None, add);
+    }
+    let Some(pr) = Priced::new(a, row.keep) else {
+        // Full support: only removals.
+        let s: Vec<usize> = (0..d).collect();
+        let all = Mat::from_fn(d, d, |p, q| a[(s[p], s[q])]);
+        let rem = all.llt(Side::Lower).ok().map(|l| l.inverse()).and_then(|m| {
+            (0..d).map(|i| (row.w_hat[i] * row.w_hat[i] / m[(i, i)], i)).min_by(|p, q| p.0.total_cmp(&q.0))
+        });
+        return (rem, None);
+    };
+    let rem = (0..pr.s.len())
+        .map(|p| {
+            let wi = row.w_hat[pr.s[p]];
+            (wi * wi / pr.m[(p, p)], pr.s[p])
+        })
+        .min_by(|p, q| p.0.total_cmp(&q.0).then(p.1.cmp(&q.1)));
+    let add = (0..pr.out.len())
+        .filter(|&q| pr.schur[q] > 0.0)
+        .map(|q| {
+            let gj = row.g[pr.out[q]];
+            (gj * gj / pr.schur[q], pr.out[q])
+        })
+        .max_by(|p, q| p.0.total_cmp(&q.0).then(q.1.cmp(&p.1)));
+    (rem, add)
+}
+
 /// Flip the support for move `mv`, keeping `g = A (ŵ − w)` consistent (the
 /// new weights start at 0); the caller refits the row, which lands on
 /// `f(S) + mv.delta`.

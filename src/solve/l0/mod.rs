@@ -312,16 +312,34 @@ pub fn solve(
         let mut changed = vec![false; d_out];
 
         if layer {
+            let exact_k = params.l0.exact_max_k.min(params.l0.chol_max);
             let mut rows = rows_mut(&mut state, d_in);
-            let (moves, delta, touched) =
+            let (mut moves, _, mut touched) =
                 swap::budget_moves(a, &prob.diag, &prob.inv_diag, &mut rows, layer_tol);
+            if moves == 0 && rows.iter().all(|r| r.keep.iter().filter(|&&x| x).count() <= exact_k) {
+                // The cheap prices stall: price removals and additions with
+                // the refit (exact, the rows being independent).
+                let mut prices: Vec<exact::Prices> = vec![(None, None); d_out];
+                let items: Vec<_> = rows.iter().zip(prices.iter_mut()).collect();
+                for_each(items, par, |(row, pr)| *pr = exact::budget_prices(a, row));
+                let rems: Vec<_> = prices.iter().map(|p| p.0).collect();
+                let adds: Vec<_> = prices.iter().map(|p| p.1).collect();
+                for (ra, j, rr, i, _) in swap::pair_rows(&adds, &rems, layer_tol) {
+                    // Flip only; the refit at the end of the sweep realises
+                    // exactly the priced change.
+                    exact::flip(a, &mut rows[rr], &exact::Move { delta: 0.0, out: vec![i], inn: vec![] });
+                    rows[ra].keep[j] = true;
+                    touched.push(ra);
+                    touched.push(rr);
+                    moves += 1;
+                }
+            }
             drop(rows);
             info.swaps += moves;
             for r in touched {
                 changed[r] = true;
                 active[r] = true;
             }
-            let _ = delta;
         }
 
         let exact_k = params.l0.exact_max_k.min(params.l0.chol_max);
@@ -431,8 +449,11 @@ fn sweep_rows(
         blocks.push((r0, block, sw));
     }
     for_each(blocks, par, |(r0, block, sw)| {
+        // Rows a budget move just touched are not at a refit optimum (an
+        // exact move leaves them above it until refit), so they wait for the
+        // refit at the end of the sweep.
         let (ids, mut rows): (Vec<usize>, Vec<RowMut<'_>>) =
-            block.into_iter().enumerate().filter(|(i, _)| active[r0 + i]).unzip();
+            block.into_iter().enumerate().filter(|(i, _)| active[r0 + i] && !moved[r0 + i]).unzip();
         if rows.is_empty() {
             return;
         }
@@ -453,14 +474,14 @@ fn sweep_rows(
                 }
             }
         }
-        // Rows where the cheap swaps found nothing sit at a refit optimum
-        // (unless a budget move just touched them): price swaps exactly.
+        // Rows where the cheap swaps found nothing sit at a refit optimum:
+        // price swaps exactly.
         let group = match pattern {
             Pattern::NofM { m, .. } => Some(m),
             Pattern::Unstructured { .. } => None,
         };
         for (row, &i) in rows.iter_mut().zip(&ids) {
-            if sw[i] > 0 || moved[r0 + i] || row.keep.iter().filter(|&&k| k).count() > exact_max_k {
+            if sw[i] > 0 || row.keep.iter().filter(|&&k| k).count() > exact_max_k {
                 continue;
             }
             if let Some(mv) = exact::best_move(prob.a, row, group) {

@@ -268,24 +268,22 @@ fn best_addition(inv_diag: &[f64], row: &RowMut<'_>) -> Option<(f64, usize)> {
         .max_by(|p, q| p.0.total_cmp(&q.0).then(q.1.cmp(&p.1)))
 }
 
-/// Move budget between rows: pair the best additions with the cheapest
-/// removals in other rows while `cost − gain < −tol`; each row takes part in
-/// at most one move. Returns (moves, total Δ, rows touched).
-pub(crate) fn budget_moves(
-    a: MatRef<'_, f64>,
-    diag: &[f64],
-    inv_diag: &[f64],
-    rows: &mut [RowMut<'_>],
+/// Pair the best additions (`adds[r] = (gain, j)`) with the cheapest
+/// removals in other rows (`rems[r] = (cost, i)`) while `cost − gain < −tol`;
+/// each row takes part in at most one move. Returns
+/// `(receiving row, j, donor row, i, Δ)` per move.
+pub(crate) fn pair_rows(
+    adds: &[Option<(f64, usize)>],
+    rems: &[Option<(f64, usize)>],
     tol: f64,
-) -> (usize, f64, Vec<usize>) {
-    let adds: Vec<Option<(f64, usize)>> = rows.iter().map(|r| best_addition(inv_diag, r)).collect();
-    let rems: Vec<Option<(f64, usize)>> = rows.iter().map(|r| cheapest_removal(diag, r)).collect();
-    let mut add_order: Vec<usize> = (0..rows.len()).filter(|&r| adds[r].is_some()).collect();
+) -> Vec<(usize, usize, usize, usize, f64)> {
+    let n = adds.len();
+    let mut add_order: Vec<usize> = (0..n).filter(|&r| adds[r].is_some()).collect();
     add_order.sort_by(|&p, &q| adds[q].unwrap().0.total_cmp(&adds[p].unwrap().0).then(p.cmp(&q)));
-    let mut rem_order: Vec<usize> = (0..rows.len()).filter(|&r| rems[r].is_some()).collect();
+    let mut rem_order: Vec<usize> = (0..n).filter(|&r| rems[r].is_some()).collect();
     rem_order.sort_by(|&p, &q| rems[p].unwrap().0.total_cmp(&rems[q].unwrap().0).then(p.cmp(&q)));
-    let mut used = vec![false; rows.len()];
-    let (mut moves, mut total, mut touched) = (0, 0.0, Vec::new());
+    let mut used = vec![false; n];
+    let mut out = Vec::new();
     let mut next_rem = 0;
     for &ra in &add_order {
         if used[ra] {
@@ -304,6 +302,28 @@ pub(crate) fn budget_moves(
         if !(delta < -tol) {
             break;
         }
+        used[ra] = true;
+        used[rr] = true;
+        out.push((ra, j, rr, i, delta));
+    }
+    out
+}
+
+/// Move budget between rows with the fixed-others prices: drop the
+/// cheapest weight of one row, add the best weight of another. Returns
+/// (moves, total Δ, rows touched).
+pub(crate) fn budget_moves(
+    a: MatRef<'_, f64>,
+    diag: &[f64],
+    inv_diag: &[f64],
+    rows: &mut [RowMut<'_>],
+    tol: f64,
+) -> (usize, f64, Vec<usize>) {
+    let adds: Vec<Option<(f64, usize)>> = rows.iter().map(|r| best_addition(inv_diag, r)).collect();
+    let rems: Vec<Option<(f64, usize)>> = rows.iter().map(|r| cheapest_removal(diag, r)).collect();
+    let (mut total, mut touched) = (0.0, Vec::new());
+    let moves = pair_rows(&adds, &rems, tol);
+    for &(ra, j, rr, i, delta) in &moves {
         let wi = rows[rr].w_hat[i];
         axpy(rows[rr].g, -wi, col(a, i));
         rows[rr].w_hat[i] = 0.0;
@@ -312,12 +332,9 @@ pub(crate) fn budget_moves(
         rows[ra].w_hat[j] = t;
         rows[ra].keep[j] = true;
         axpy(rows[ra].g, t, col(a, j));
-        used[ra] = true;
-        used[rr] = true;
-        moves += 1;
         total += delta;
         touched.push(ra);
         touched.push(rr);
     }
-    (moves, total, touched)
+    (moves.len(), total, touched)
 }
