@@ -102,7 +102,7 @@ pub struct L0Params {
     /// conjugate gradients. Default 256.
     pub chol_max: usize,
     /// Relative residual `‖g_S‖ / ‖(A w)_S‖` at which a CG refit of a row
-    /// stops. Default `1e-8`: the objective error left is quadratic in it,
+    /// stops. Default `1e-6`: the objective error left is quadratic in it,
     /// and swap prices use the exact gradient of whatever the refit returns.
     pub cg_tol: f64,
     /// Iteration cap of one CG refit. Default 500.
@@ -124,7 +124,7 @@ impl Default for L0Params {
             max_seconds: None,
             trace: false,
             chol_max: 256,
-            cg_tol: 1e-8,
+            cg_tol: 1e-6,
             cg_max_iter: 500,
             swap_tol: 1e-12,
             exact_max_k: 64,

@@ -189,7 +189,11 @@ fn solve(l: &[f64], n: usize, b: &mut [f64]) {
 /// Besides the best atomic move, every pair of the [`TOP`] best atomic moves
 /// with disjoint indices (and distinct groups) is priced jointly: two moves
 /// can improve together when neither does alone.
-pub(crate) fn best_move(a: MatRef<'_, f64>, row: &RowMut<'_>, group: Option<usize>) -> Option<Move> {
+pub(crate) fn best_move(
+    a: MatRef<'_, f64>,
+    row: &RowMut<'_>,
+    group: Option<usize>,
+) -> Option<Move> {
     let pr = Priced::new(a, row.keep)?;
     let mut best: Option<Move> = None;
     let mut consider = |delta: f64, ps: &[usize], qs: &[usize]| {
@@ -234,10 +238,15 @@ pub(crate) fn best_move(a: MatRef<'_, f64>, row: &RowMut<'_>, group: Option<usiz
                     if t == cur || t.count_ones() != cur.count_ones() {
                         continue;
                     }
-                    let bits = |x: u32| (0..m).filter(move |&c| (x >> c) & 1 == 1).map(|c| pos[g0 + c]);
+                    let bits =
+                        |x: u32| (0..m).filter(move |&c| (x >> c) & 1 == 1).map(|c| pos[g0 + c]);
                     let ps: Vec<usize> = bits(cur & !t).collect();
                     let qs: Vec<usize> = bits(t & !cur).collect();
-                    let delta = if ps.len() == 1 { pr.single(row, ps[0], qs[0]) } else { pr.block(a, row, &ps, &qs) };
+                    let delta = if ps.len() == 1 {
+                        pr.single(row, ps[0], qs[0])
+                    } else {
+                        pr.block(a, row, &ps, &qs)
+                    };
                     push(delta, ps, qs, g0);
                 }
             }
@@ -249,7 +258,8 @@ pub(crate) fn best_move(a: MatRef<'_, f64>, row: &RowMut<'_>, group: Option<usiz
     for x in 0..top.len() {
         for y in x + 1..top.len() {
             let (a1, a2) = (&top[x], &top[y]);
-            let disjoint = a1.1.iter().all(|p| !a2.1.contains(p)) && a1.2.iter().all(|q| !a2.2.contains(q));
+            let disjoint =
+                a1.1.iter().all(|p| !a2.1.contains(p)) && a1.2.iter().all(|q| !a2.2.contains(q));
             if disjoint && (a1.3 == usize::MAX || a1.3 != a2.3) {
                 let ps: Vec<usize> = a1.1.iter().chain(&a2.1).copied().collect();
                 let qs: Vec<usize> = a1.2.iter().chain(&a2.2).copied().collect();
@@ -271,7 +281,8 @@ pub(crate) fn budget_prices(a: MatRef<'_, f64>, row: &RowMut<'_>) -> Prices {
     let k = row.keep.iter().filter(|&&x| x).count();
     if k == 0 {
         // Nothing to remove; adding j alone gains g_j² / A_jj exactly.
-        let add = (0..d).map(|j| (row.g[j] * row.g[j] / a[(j, j)], j)).max_by(|p, q| p.0.total_cmp(&q.0));
+        let add =
+            (0..d).map(|j| (row.g[j] * row.g[j] / a[(j, j)], j)).max_by(|p, q| p.0.total_cmp(&q.0));
         return (None, add);
     }
     let Some(pr) = Priced::new(a, row.keep) else {
@@ -279,7 +290,9 @@ pub(crate) fn budget_prices(a: MatRef<'_, f64>, row: &RowMut<'_>) -> Prices {
         let s: Vec<usize> = (0..d).collect();
         let all = Mat::from_fn(d, d, |p, q| a[(s[p], s[q])]);
         let rem = all.llt(Side::Lower).ok().map(|l| l.inverse()).and_then(|m| {
-            (0..d).map(|i| (row.w_hat[i] * row.w_hat[i] / m[(i, i)], i)).min_by(|p, q| p.0.total_cmp(&q.0))
+            (0..d)
+                .map(|i| (row.w_hat[i] * row.w_hat[i] / m[(i, i)], i))
+                .min_by(|p, q| p.0.total_cmp(&q.0))
         });
         return (rem, None);
     };
@@ -311,5 +324,67 @@ pub(crate) fn flip(a: MatRef<'_, f64>, row: &mut RowMut<'_>, mv: &Move) {
     }
     for &j in &mv.inn {
         row.keep[j] = true;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::super::tests::{instance, Lcg};
+    use super::super::{refit, Problem, State};
+    use super::*;
+
+    #[test]
+    fn priced_moves_match_refit_differences() {
+        // Δ from the block formulas against f(S') − f(S) with both supports
+        // refit from scratch by Cholesky.
+        let mut rng = Lcg::new(21);
+        let (x, w, lambda) = instance(&mut rng, 60, 12, 1, 0.01);
+        let mut a = x.transpose() * &x;
+        for j in 0..12 {
+            a[(j, j)] += lambda;
+        }
+        let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+        let refit_value = |keep: &[bool]| {
+            let (mut wh, mut g) = (vec![0.0; 12], vec![0.0; 12]);
+            refit::cholesky_row(a.as_ref(), &prob.w, &prob.b, &mut wh, keep, &mut g).unwrap()
+        };
+        let keep: Vec<bool> = (0..12).map(|c| c % 3 != 0).collect();
+        let mut st = State::from_support(&prob, keep.clone(), None, Par::Seq);
+        let f0 =
+            refit::cholesky_row(a.as_ref(), &prob.w, &prob.b, &mut st.w_hat, &st.keep, &mut st.g)
+                .unwrap();
+        let row = RowMut { w_hat: &mut st.w_hat, g: &mut st.g, keep: &mut st.keep };
+        let pr = Priced::new(a.as_ref(), row.keep).unwrap();
+        let tol = 1e-9 * prob.dense[0];
+        let moves: [(&[usize], &[usize]); 4] =
+            [(&[0], &[0]), (&[3], &[2]), (&[1, 5], &[0, 3]), (&[0, 2, 7], &[1, 2, 3])];
+        for (ps, qs) in moves {
+            let delta = if ps.len() == 1 {
+                pr.single(&row, ps[0], qs[0])
+            } else {
+                pr.block(a.as_ref(), &row, ps, qs)
+            };
+            let mut k2 = keep.clone();
+            for &p in ps {
+                k2[pr.s[p]] = false;
+            }
+            for &q in qs {
+                k2[pr.out[q]] = true;
+            }
+            let want = refit_value(&k2) - f0;
+            assert!(
+                (delta - want).abs() <= tol,
+                "{ps:?}/{qs:?}: {delta} vs {want} (tol {tol:.2e})"
+            );
+        }
+        let (rem, add) = budget_prices(a.as_ref(), &row);
+        let (cost, i) = rem.unwrap();
+        let mut k2 = keep.clone();
+        k2[i] = false;
+        assert!((refit_value(&k2) - f0 - cost).abs() <= tol);
+        let (gain, j) = add.unwrap();
+        let mut k3 = keep.clone();
+        k3[j] = true;
+        assert!((f0 - refit_value(&k3) - gain).abs() <= tol);
     }
 }

@@ -97,7 +97,14 @@ impl<'s> Problem<'s> {
             }
         }
         let mut b = vec![0.0; d_out * d_in];
-        matmul(MatMut::from_row_major_slice_mut(&mut b, d_out, d_in), Accum::Replace, w, a, 1.0, par);
+        matmul(
+            MatMut::from_row_major_slice_mut(&mut b, d_out, d_in),
+            Accum::Replace,
+            w,
+            a,
+            1.0,
+            par,
+        );
         let dense = (0..d_out)
             .map(|r| {
                 let rg = r * d_in..(r + 1) * d_in;
@@ -122,13 +129,24 @@ pub(crate) struct State {
 
 impl State {
     /// `ŵ = start ∘ keep` (`start` defaults to `W`), with its gradient.
-    pub(crate) fn from_support(prob: &Problem<'_>, keep: Vec<bool>, start: Option<&[f64]>, par: Par) -> Self {
+    pub(crate) fn from_support(
+        prob: &Problem<'_>,
+        keep: Vec<bool>,
+        start: Option<&[f64]>,
+        par: Par,
+    ) -> Self {
+        let mut s = State::unrefined(prob, keep, start);
+        refit::gradient_all(prob, &mut s, par);
+        s
+    }
+
+    /// As [`State::from_support`] but without the gradient (one product of
+    /// the layer with `A`): for states that a Cholesky refit rebuilds anyway.
+    fn unrefined(prob: &Problem<'_>, keep: Vec<bool>, start: Option<&[f64]>) -> Self {
         let src = start.unwrap_or(&prob.w);
         let w_hat = keep.iter().zip(src).map(|(&k, &x)| if k { x } else { 0.0 }).collect();
         let n = keep.len();
-        let mut s = State { w_hat, g: vec![0.0; n], keep, f: vec![0.0; prob.d_out] };
-        refit::gradient_all(prob, &mut s, par);
-        s
+        State { w_hat, g: vec![0.0; n], keep, f: vec![0.0; prob.d_out] }
     }
 
     fn total(&self) -> f64 {
@@ -144,6 +162,14 @@ fn for_each<T: Send>(items: Vec<T>, par: Par, f: impl Fn(T) + Sync + Send) {
     }
 }
 
+/// Whether [`refit_rows`] refits the flagged rows by per-row Cholesky.
+fn uses_cholesky(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> bool {
+    keep.chunks(d_in)
+        .zip(rows)
+        .filter(|(_, &r)| r)
+        .all(|(k, _)| k.iter().filter(|&&x| x).count() <= chol_max)
+}
+
 /// Refit the rows flagged in `rows` exactly; returns CG iterations (0 when
 /// every refit row is small enough for a dense Cholesky solve).
 fn refit_rows(
@@ -154,12 +180,7 @@ fn refit_rows(
     par: Par,
 ) -> Result<usize, SolveError> {
     let d_in = prob.d_in;
-    let kmax = (0..prob.d_out)
-        .filter(|&r| rows[r])
-        .map(|r| state.keep[r * d_in..(r + 1) * d_in].iter().filter(|&&k| k).count())
-        .max()
-        .unwrap_or(0);
-    if kmax <= params.l0.chol_max {
+    if uses_cholesky(&state.keep, rows, d_in, params.l0.chol_max) {
         let err = std::sync::Mutex::new(None);
         let items: Vec<_> = state
             .w_hat
@@ -191,7 +212,13 @@ fn refit_rows(
 /// start leaves kept weights at exactly zero.
 fn complete_support(keep: &mut [bool], scores: &Mat<f64>, pattern: Pattern) {
     let (d_out, d_in) = (scores.nrows(), scores.ncols());
-    let free = |keep: &[bool], r: usize, c: usize| if keep[r * d_in + c] { f64::NEG_INFINITY } else { scores[(r, c)] };
+    let free = |keep: &[bool], r: usize, c: usize| {
+        if keep[r * d_in + c] {
+            f64::NEG_INFINITY
+        } else {
+            scores[(r, c)]
+        }
+    };
     match pattern {
         Pattern::Unstructured { sparsity, scope: Scope::Row } => {
             let k = budget::kept(sparsity, d_in);
@@ -209,7 +236,8 @@ fn complete_support(keep: &mut [bool], scores: &Mat<f64>, pattern: Pattern) {
             let k = budget::kept(sparsity, d_out * d_in);
             let have = keep.iter().filter(|&&x| x).count();
             if have < k {
-                let s: Vec<f64> = (0..d_out * d_in).map(|i| free(keep, i / d_in, i % d_in)).collect();
+                let s: Vec<f64> =
+                    (0..d_out * d_in).map(|i| free(keep, i / d_in, i % d_in)).collect();
                 for i in top_k(&s, k - have) {
                     keep[i] = true;
                 }
@@ -251,14 +279,23 @@ pub fn solve(
 
     // Start (a): scaled magnitude mask, exact refit.
     let scores = scaled_scores(w, a);
-    let mut sa = State::from_support(&prob, mask_support(&select(scores.as_ref(), pattern)), None, par);
+    // A start refit by Cholesky needs no gradient beforehand; one refit by
+    // CG needs it for the warm start.
+    let start_state = |keep: Vec<bool>, from: Option<&[f64]>| {
+        if uses_cholesky(&keep, &all, d_in, params.l0.chol_max) {
+            State::unrefined(&prob, keep, from)
+        } else {
+            State::from_support(&prob, keep, from, par)
+        }
+    };
+    let mut sa = start_state(mask_support(&select(scores.as_ref(), pattern)), None);
     let mut cg_iters = refit_rows(&prob, &mut sa, &all, params, par)?;
     // Start (b): OBS sweep support, exact refit warm-started from its weights.
     let ob = obs::sweep(w, a, pattern, params.obs_block, par)?;
     let mut keep_b = mask_support(&Mask::nonzeros(ob.weight.as_ref()));
     complete_support(&mut keep_b, &scores, pattern);
     let ob_rm: Vec<f64> = (0..d_out * d_in).map(|i| ob.weight[(i / d_in, i % d_in)]).collect();
-    let mut sb = State::from_support(&prob, keep_b, Some(&ob_rm), par);
+    let mut sb = start_state(keep_b, Some(&ob_rm));
     drop(ob_rm);
     cg_iters += refit_rows(&prob, &mut sb, &all, params, par)?;
 
@@ -266,7 +303,8 @@ pub fn solve(
     let mut state;
     let init;
     if layer {
-        (state, init) = if sb.total() < sa.total() { (sb, "obs+refit") } else { (sa, "scaled+refit") };
+        (state, init) =
+            if sb.total() < sa.total() { (sb, "obs+refit") } else { (sa, "scaled+refit") };
     } else {
         let mut took_b = 0;
         for r in 0..d_out {
@@ -327,7 +365,11 @@ pub fn solve(
                 for (ra, j, rr, i, _) in swap::pair_rows(&adds, &rems, layer_tol) {
                     // Flip only; the refit at the end of the sweep realises
                     // exactly the priced change.
-                    exact::flip(a, &mut rows[rr], &exact::Move { delta: 0.0, out: vec![i], inn: vec![] });
+                    exact::flip(
+                        a,
+                        &mut rows[rr],
+                        &exact::Move { delta: 0.0, out: vec![i], inn: vec![] },
+                    );
                     rows[ra].keep[j] = true;
                     touched.push(ra);
                     touched.push(rr);
@@ -409,8 +451,13 @@ pub fn solve(
 
     info.objective_final = state.total();
     info.refit_iterations = cg_iters;
-    let weight =
-        Mat::from_fn(d_out, d_in, |r, c| if state.keep[r * d_in + c] { state.w_hat[r * d_in + c] } else { 0.0 });
+    let weight = Mat::from_fn(d_out, d_in, |r, c| {
+        if state.keep[r * d_in + c] {
+            state.w_hat[r * d_in + c]
+        } else {
+            0.0
+        }
+    });
     Ok(Pruned { weight, info })
 }
 
@@ -470,7 +517,15 @@ fn sweep_rows(
                 swap::score_block(prob.a, &prob.inv_diag, &rows, &row_tol, &mut avail, &mut cands);
                 for (bi, (row, &i)) in rows.iter_mut().zip(&ids).enumerate() {
                     let av = &mut avail[bi * d_in..(bi + 1) * d_in];
-                    sw[i] = swap::apply_row(prob.a, &prob.inv_diag, row, &mut cands[bi], row_tol[bi], av).0;
+                    sw[i] = swap::apply_row(
+                        prob.a,
+                        &prob.inv_diag,
+                        row,
+                        &mut cands[bi],
+                        row_tol[bi],
+                        av,
+                    )
+                    .0;
                 }
             }
         }
@@ -522,7 +577,13 @@ pub(crate) mod tests {
     /// Calibration inputs with correlated columns (a shared factor plus a
     /// moving average) and two outlier columns 8x louder, dense weights, and
     /// `λ = α · mean diag(XᵀX)`.
-    pub(crate) fn instance(rng: &mut Lcg, n: usize, d: usize, rows: usize, alpha: f64) -> (Mat<f64>, Mat<f64>, f64) {
+    pub(crate) fn instance(
+        rng: &mut Lcg,
+        n: usize,
+        d: usize,
+        rows: usize,
+        alpha: f64,
+    ) -> (Mat<f64>, Mat<f64>, f64) {
         let z = Mat::from_fn(n, d + 1, |_, _| rng.normal());
         let common: Vec<f64> = (0..n).map(|_| rng.normal()).collect();
         let o1 = (rng.uniform() * d as f64) as usize;
@@ -551,8 +612,6 @@ pub(crate) mod tests {
 
     /// Optimal value on support `s` (row-local indices): `wᵀAw − b_Sᵀ A_SS⁻¹ b_S`,
     /// by a dense LU solve (a different factorisation from the solver's).
-    pub(crate) fn support_value_pub(a: &Mat<f64>, w: &[f64], s: &[usize]) -> f64 { support_value(a, w, s) }
-    pub(crate) fn subsets_pub(d: usize, k: usize) -> Vec<Vec<usize>> { subsets(d, k) }
     fn support_value(a: &Mat<f64>, w: &[f64], s: &[usize]) -> f64 {
         let d = w.len();
         let b: Vec<f64> = (0..d).map(|i| (0..d).map(|j| a[(i, j)] * w[j]).sum()).collect();
@@ -569,7 +628,10 @@ pub(crate) mod tests {
 
     /// All `k`-subsets of `0..d`.
     fn subsets(d: usize, k: usize) -> Vec<Vec<usize>> {
-        (0u32..1 << d).filter(|m| m.count_ones() as usize == k).map(|m| (0..d).filter(|&j| m >> j & 1 == 1).collect()).collect()
+        (0u32..1 << d)
+            .filter(|m| m.count_ones() as usize == k)
+            .map(|m| (0..d).filter(|&j| m >> j & 1 == 1).collect())
+            .collect()
     }
 
     /// All N:M supports of a row of width `d`: every combination of one
@@ -580,7 +642,11 @@ pub(crate) mod tests {
         for q in 0..d / m {
             out = out
                 .into_iter()
-                .flat_map(|s| per_group.iter().map(move |g| s.iter().copied().chain(g.iter().map(|&j| q * m + j)).collect()))
+                .flat_map(|s| {
+                    per_group.iter().map(move |g| {
+                        s.iter().copied().chain(g.iter().map(|&j| q * m + j)).collect()
+                    })
+                })
                 .collect();
         }
         out
@@ -669,11 +735,82 @@ pub(crate) mod tests {
         // product up to rounding of O(d ε ‖W‖² ‖A‖).
         let scale = w.norm_l2().powi(2) * a.norm_max() * a.nrows() as f64;
         let tol = 1e-12 * scale;
-        assert!((info.objective_final - direct).abs() <= tol, "final {} vs direct {direct} (tol {tol:.2e})", info.objective_final);
-        assert!(info.objective_final <= info.objective_initial, "{} > {}", info.objective_final, info.objective_initial);
+        assert!(
+            (info.objective_final - direct).abs() <= tol,
+            "final {} vs direct {direct} (tol {tol:.2e})",
+            info.objective_final
+        );
+        assert!(
+            info.objective_final <= info.objective_initial,
+            "{} > {}",
+            info.objective_final,
+            info.objective_initial
+        );
         assert_eq!(info.trace.first().copied(), Some(info.objective_initial));
         for p in info.trace.windows(2) {
             assert!(p[1] <= p[0], "trace rose: {:?}", info.trace);
+        }
+    }
+
+    #[test]
+    fn conforms_and_never_increases() {
+        // Every pattern, both refit paths (per-row Cholesky, batched CG via
+        // chol_max = 0), sequential and parallel.
+        let mut rng = Lcg::new(99);
+        let (x, w, lambda) = instance(&mut rng, 200, 48, 12, 0.01);
+        let a = gram(&x, lambda);
+        let patterns = [
+            Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row },
+            Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row },
+            Pattern::Unstructured { sparsity: 0.7, scope: Scope::Layer },
+            Pattern::NofM { n: 2, m: 4 },
+            Pattern::NofM { n: 1, m: 8 },
+        ];
+        for pattern in patterns {
+            for (chol_max, par) in
+                [(256, Par::Seq), (0, Par::Seq), (256, Par::rayon(2)), (0, Par::rayon(2))]
+            {
+                let mut params = l0_params(pattern);
+                params.l0.trace = true;
+                params.l0.chol_max = chol_max;
+                let got = solve(w.as_ref(), a.as_ref(), &params, par).unwrap();
+                check_output(&w, &a, &got, pattern);
+                assert_eq!(got.info.trace.len(), got.info.sweeps + 1, "{pattern:?}");
+                assert!(got.info.init.is_some());
+                if chol_max == 0 {
+                    assert!(got.info.refit_iterations > 0, "{pattern:?}: CG path not taken");
+                }
+                // Not worse than either start: the OBS sweep, refit or not.
+                let ob =
+                    obs::sweep(w.as_ref(), a.as_ref(), pattern, params.obs_block, par).unwrap();
+                let f_obs = objective(&w, &ob.weight, &a);
+                assert!(
+                    got.info.objective_final <= f_obs * (1.0 + 1e-9),
+                    "{pattern:?}: {} > obs {f_obs}",
+                    got.info.objective_final
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn budget_runs_out_cleanly() {
+        // A zero sweep budget returns the better start, refit; a zero time
+        // budget likewise.
+        let mut rng = Lcg::new(3);
+        let (x, w, lambda) = instance(&mut rng, 100, 32, 6, 0.01);
+        let a = gram(&x, lambda);
+        let pattern = Pattern::Unstructured { sparsity: 0.75, scope: Scope::Row };
+        for (sweeps, secs) in [(0, None), (20, Some(0.0))] {
+            let mut params = l0_params(pattern);
+            params.l0.max_sweeps = sweeps;
+            params.l0.max_seconds = secs;
+            params.l0.trace = true;
+            let got = solve(w.as_ref(), a.as_ref(), &params, Par::Seq).unwrap();
+            check_output(&w, &a, &got, pattern);
+            assert_eq!(got.info.sweeps, 0);
+            assert_eq!(got.info.objective_final, got.info.objective_initial);
+            assert_eq!(got.info.trace, vec![got.info.objective_initial]);
         }
     }
 
@@ -694,7 +831,9 @@ pub(crate) mod tests {
                     let opt: f64 = (0..w.nrows())
                         .map(|r| {
                             let wr: Vec<f64> = (0..d).map(|c| w[(r, c)]).collect();
-                            all.iter().map(|s| support_value(&a, &wr, s)).fold(f64::INFINITY, f64::min)
+                            all.iter()
+                                .map(|s| support_value(&a, &wr, s))
+                                .fold(f64::INFINITY, f64::min)
                         })
                         .sum();
                     let (l0, greedy, ob) = run_methods(&w, &a, pattern);
@@ -751,13 +890,28 @@ pub(crate) mod tests {
                     let pattern = Pattern::Unstructured { sparsity, scope: Scope::Layer };
                     let k = budget::kept(sparsity, rows * d);
                     // Row values for every row support, then every split.
-                    let wr: Vec<Vec<f64>> = (0..rows).map(|r| (0..d).map(|c| w[(r, c)]).collect()).collect();
+                    let wr: Vec<Vec<f64>> =
+                        (0..rows).map(|r| (0..d).map(|c| w[(r, c)]).collect()).collect();
                     let val: Vec<Vec<f64>> = (0..rows)
-                        .map(|r| (0u32..1 << d).map(|m| support_value(&a, &wr[r], &(0..d).filter(|&j| m >> j & 1 == 1).collect::<Vec<_>>())).collect())
+                        .map(|r| {
+                            (0u32..1 << d)
+                                .map(|m| {
+                                    support_value(
+                                        &a,
+                                        &wr[r],
+                                        &(0..d).filter(|&j| m >> j & 1 == 1).collect::<Vec<_>>(),
+                                    )
+                                })
+                                .collect()
+                        })
                         .collect();
                     let opt = (0u32..1 << (rows * d))
                         .filter(|m| m.count_ones() as usize == k)
-                        .map(|m| (0..rows).map(|r| val[r][((m >> (r * d)) & ((1 << d) - 1)) as usize]).sum::<f64>())
+                        .map(|m| {
+                            (0..rows)
+                                .map(|r| val[r][((m >> (r * d)) & ((1 << d) - 1)) as usize])
+                                .sum::<f64>()
+                        })
                         .fold(f64::INFINITY, f64::min);
                     let (l0, greedy, ob) = run_methods(&w, &a, pattern);
                     tally.add(opt, l0, greedy, ob);
@@ -769,48 +923,6 @@ pub(crate) mod tests {
         assert!(gap < 0.01, "mean gap {gap:.3e} ≥ 1%");
     }
 }
-#[cfg(test)]
-mod probe {
-    use super::tests::*;
-    use super::*;
-    #[test]
-    fn probe_exact_swaps() {
-        let d = 16;
-        let mut rng = Lcg::new(2024);
-        let (mut rows_fail, mut rows_fix, mut rows) = (0, 0, 0);
-        for seed in 0..8 {
-            for alpha in [0.0, 0.01] {
-                let (x, w, lambda) = instance(&mut rng, 24 + seed, d, 3, alpha);
-                let mut a = x.transpose() * &x;
-                for j in 0..d { a[(j, j)] += lambda; }
-                for sparsity in [0.5, 0.75, 0.875] {
-                    let pattern = Pattern::Unstructured { sparsity, scope: Scope::Row };
-                    let k = budget::kept(sparsity, d);
-                    let p = SolveParams { method: super::super::Method::L0, pattern, ..SolveParams::default() };
-                    let got = solve(w.as_ref(), a.as_ref(), &p, Par::Seq).unwrap();
-                    let all = subsets_pub(d, k);
-                    for r in 0..3 {
-                        rows += 1;
-                        let wr: Vec<f64> = (0..d).map(|c| w[(r, c)]).collect();
-                        let opt = all.iter().map(|s| support_value_pub(&a, &wr, s)).fold(f64::INFINITY, f64::min);
-                        let s: Vec<usize> = (0..d).filter(|&c| got.weight[(r, c)] != 0.0).collect();
-                        let cur = support_value_pub(&a, &wr, &s);
-                        if cur > opt * (1.0 + 1e-6) {
-                            rows_fail += 1;
-                            let mut best = cur;
-                            for &i in &s { for j in 0..d { if s.contains(&j) { continue; }
-                                let t: Vec<usize> = s.iter().map(|&q| if q == i { j } else { q }).collect();
-                                best = best.min(support_value_pub(&a, &wr, &t)); } }
-                            if best < cur * (1.0 - 1e-9) { rows_fix += 1; }
-                        }
-                    }
-                }
-            }
-        }
-        println!("rows {rows} failing {rows_fail} exact-swap-improvable {rows_fix}");
-    }
-}
-
 #[cfg(test)]
 mod bench {
     use super::tests::Lcg;

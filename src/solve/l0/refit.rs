@@ -153,10 +153,7 @@ pub(crate) fn pcg(
     };
     // Active rows with their stop threshold ‖g_S‖² ≤ tol² ‖b_S‖² and r·z.
     let mut act: Vec<(usize, f64, f64)> = Vec::new();
-    for r in 0..d_out {
-        if !rows[r] {
-            continue;
-        }
+    for r in (0..d_out).filter(|&r| rows[r]) {
         let thresh = tol * tol * masked_sq(r, &prob.b, &state.keep);
         if masked_sq(r, &state.g, &state.keep) > thresh {
             act.push((r, thresh, 0.0));
@@ -167,7 +164,9 @@ pub(crate) fn pcg(
         // z = −g_S / diag(A); p = z; rz = (−g_S)·z.
         let (rg, pr) = (*r * d_in..(*r + 1) * d_in, &mut p[slot * d_in..(slot + 1) * d_in]);
         let mut s = 0.0;
-        for ((pj, (&gj, &kj)), &ij) in pr.iter_mut().zip(state.g[rg.clone()].iter().zip(&state.keep[rg])).zip(inv) {
+        for ((pj, (&gj, &kj)), &ij) in
+            pr.iter_mut().zip(state.g[rg.clone()].iter().zip(&state.keep[rg])).zip(inv)
+        {
             if kj {
                 *pj = -gj * ij;
                 s += gj * gj * ij;
@@ -205,7 +204,9 @@ pub(crate) fn pcg(
                 continue;
             }
             let mut s = 0.0;
-            for ((&gj, &kj), &ij) in state.g[rg.clone()].iter().zip(&state.keep[rg.clone()]).zip(inv) {
+            for ((&gj, &kj), &ij) in
+                state.g[rg.clone()].iter().zip(&state.keep[rg.clone()]).zip(inv)
+            {
                 if kj {
                     s += gj * gj * ij;
                 }
@@ -265,7 +266,8 @@ mod tests {
         let mut rng = Lcg::new(11);
         for trial in 0..12 {
             let d = 6 + trial % 7;
-            let (x, w, lambda) = instance(&mut rng, 40, d, 3, if trial % 2 == 0 { 0.01 } else { 0.0 });
+            let (x, w, lambda) =
+                instance(&mut rng, 40, d, 3, if trial % 2 == 0 { 0.01 } else { 0.0 });
             let a = {
                 let mut a = x.transpose() * &x;
                 for j in 0..d {
@@ -294,13 +296,20 @@ mod tests {
             for r in 0..3 {
                 let rg = r * d..(r + 1) * d;
                 let want = lstsq_reference(&x, lambda, &prob.w[rg.clone()], &keep[rg.clone()]);
-                let scale = want.iter().chain(&prob.w[rg.clone()]).fold(0.0f64, |m, v| m.max(v.abs()));
+                let scale =
+                    want.iter().chain(&prob.w[rg.clone()]).fold(0.0f64, |m, v| m.max(v.abs()));
                 // QR backward error is O(ε κ(M_S)); the instances are mildly
                 // conditioned, so 1e-9 relative leaves a wide margin.
                 let tol = 1e-9 * scale.max(1.0);
-                for (name, got) in [("cholesky", &chol.w_hat[rg.clone()]), ("pcg", &cg.w_hat[rg.clone()])] {
-                    let diff = got.iter().zip(&want).map(|(p, q)| (p - q).abs()).fold(0.0, f64::max);
-                    assert!(diff <= tol, "{name} trial {trial} row {r}: max diff {diff:.3e} > {tol:.3e}");
+                for (name, got) in
+                    [("cholesky", &chol.w_hat[rg.clone()]), ("pcg", &cg.w_hat[rg.clone()])]
+                {
+                    let diff =
+                        got.iter().zip(&want).map(|(p, q)| (p - q).abs()).fold(0.0, f64::max);
+                    assert!(
+                        diff <= tol,
+                        "{name} trial {trial} row {r}: max diff {diff:.3e} > {tol:.3e}"
+                    );
                     for (j, &v) in got.iter().enumerate() {
                         if !keep[r * d + j] {
                             assert_eq!(v, 0.0);
