@@ -99,8 +99,8 @@ pub struct L0Params {
     pub trace: bool,
     /// Largest support refit by a dense per-row Cholesky solve of `A_SS`;
     /// when some row keeps more, all rows are refit together by batched
-    /// conjugate gradients. Default 256.
-    pub chol_max: usize,
+    /// conjugate gradients. `None` (default): see [`L0Params::chol_limit`].
+    pub chol_max: Option<usize>,
     /// Relative residual `‖g_S‖ / ‖(A w)_S‖` at which a CG refit of a row
     /// stops. Default `1e-6`: the objective error left is quadratic in it,
     /// and swap prices use the exact gradient of whatever the refit returns.
@@ -117,13 +117,24 @@ pub struct L0Params {
     pub exact_max_k: usize,
 }
 
+impl L0Params {
+    /// The support size up to which refits use per-row Cholesky. The
+    /// automatic limit compares costs per row: `k³/3` for the factorisation
+    /// against about 40 CG iterations of `2·d_in²` each (one row of the
+    /// batched product `P A`), i.e. `k ≤ cbrt(240 · d_in²)` (≈ 830 for
+    /// `d_in = 1536`, ≈ 3070 for `d_in = 11008`).
+    pub fn chol_limit(&self, d_in: usize) -> usize {
+        self.chol_max.unwrap_or_else(|| (240.0 * (d_in as f64).powi(2)).cbrt() as usize)
+    }
+}
+
 impl Default for L0Params {
     fn default() -> Self {
         L0Params {
             max_sweeps: 20,
             max_seconds: None,
             trace: false,
-            chol_max: 256,
+            chol_max: None,
             cg_tol: 1e-6,
             cg_max_iter: 500,
             swap_tol: 1e-12,

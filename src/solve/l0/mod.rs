@@ -180,7 +180,7 @@ fn refit_rows(
     par: Par,
 ) -> Result<usize, SolveError> {
     let d_in = prob.d_in;
-    if uses_cholesky(&state.keep, rows, d_in, params.l0.chol_max) {
+    if uses_cholesky(&state.keep, rows, d_in, params.l0.chol_limit(d_in)) {
         let err = std::sync::Mutex::new(None);
         let items: Vec<_> = state
             .w_hat
@@ -282,7 +282,7 @@ pub fn solve(
     // A start refit by Cholesky needs no gradient beforehand; one refit by
     // CG needs it for the warm start.
     let start_state = |keep: Vec<bool>, from: Option<&[f64]>| {
-        if uses_cholesky(&keep, &all, d_in, params.l0.chol_max) {
+        if uses_cholesky(&keep, &all, d_in, params.l0.chol_limit(d_in)) {
             State::unrefined(&prob, keep, from)
         } else {
             State::from_support(&prob, keep, from, par)
@@ -350,7 +350,7 @@ pub fn solve(
         let mut changed = vec![false; d_out];
 
         if layer {
-            let exact_k = params.l0.exact_max_k.min(params.l0.chol_max);
+            let exact_k = params.l0.exact_max_k.min(params.l0.chol_limit(d_in));
             let mut rows = rows_mut(&mut state, d_in);
             let (mut moves, _, mut touched) =
                 swap::budget_moves(a, &prob.diag, &prob.inv_diag, &mut rows, layer_tol);
@@ -384,7 +384,7 @@ pub fn solve(
             }
         }
 
-        let exact_k = params.l0.exact_max_k.min(params.l0.chol_max);
+        let exact_k = params.l0.exact_max_k.min(params.l0.chol_limit(d_in));
         let swaps = sweep_rows(&prob, &mut state, &active, &changed, &tol, pattern, exact_k, par);
         for r in 0..d_out {
             info.swaps += swaps[r];
@@ -772,7 +772,7 @@ pub(crate) mod tests {
             {
                 let mut params = l0_params(pattern);
                 params.l0.trace = true;
-                params.l0.chol_max = chol_max;
+                params.l0.chol_max = Some(chol_max);
                 let got = solve(w.as_ref(), a.as_ref(), &params, par).unwrap();
                 check_output(&w, &a, &got, pattern);
                 assert_eq!(got.info.trace.len(), got.info.sweeps + 1, "{pattern:?}");

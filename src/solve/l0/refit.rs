@@ -14,7 +14,7 @@
 //! - [`cholesky_row`]: gather `A_SS`, factor it (faer `llt`), solve. Cost
 //!   `k³/3 + k·d_in` per row (the second term rebuilds `g = A_{:,S} ŵ_S − b`
 //!   exactly, so `g` carries no accumulated update error). Used when every
-//!   row keeps at most [`super::super::L0Params::chol_max`] weights.
+//!   row keeps at most [`crate::solve::L0Params::chol_limit`] weights.
 //! - [`pcg`]: preconditioned conjugate gradients on all rows at once. One
 //!   iteration is one dense product `Q = P A` of the masked search directions
 //!   (`d_out x d_in` times `d_in x d_in`, faer matmul), a Jacobi
