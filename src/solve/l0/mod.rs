@@ -969,18 +969,28 @@ mod bench {
         println!("setup {:.2}s", t.elapsed().as_secs_f64());
         let lambda = ridge_lambda(h.as_ref(), 0.01);
         let a = regularised(h.as_ref(), lambda);
+        // The machine is shared: time each solver `REPS` times, keep the
+        // fastest.
+        const REPS: usize = 3;
+        let timed = |params: &SolveParams| {
+            let mut best = f64::INFINITY;
+            let mut out = None;
+            for _ in 0..REPS {
+                let t = Instant::now();
+                let p = prune_layer(w.as_ref(), h.as_ref(), params, par).unwrap();
+                best = best.min(t.elapsed().as_secs_f64());
+                out = Some(p);
+            }
+            (best, out.unwrap())
+        };
         for sparsity in [0.9, 0.5] {
             let pattern = Pattern::Unstructured { sparsity, scope: Scope::Row };
             let mut params = SolveParams { pattern, ridge_alpha: 0.01, ..SolveParams::default() };
-            let t = Instant::now();
-            let ob = prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap();
-            let t_obs = t.elapsed().as_secs_f64();
+            let (t_obs, ob) = timed(&params);
             let e_obs = relative_error(w.as_ref(), ob.weight.as_ref(), h.as_ref(), par);
             params.method = Method::L0;
             params.l0.trace = true;
-            let t = Instant::now();
-            let l0 = prune_layer(w.as_ref(), h.as_ref(), &params, par).unwrap();
-            let t_l0 = t.elapsed().as_secs_f64();
+            let (t_l0, l0) = timed(&params);
             let e_l0 = relative_error(w.as_ref(), l0.weight.as_ref(), h.as_ref(), par);
             let _ = &a;
             println!(

@@ -43,28 +43,30 @@ pub(crate) struct Cand {
 }
 
 /// Largest `(g_j − x a_j)² m_j` and its index (`usize::MAX` when every
-/// `m_j = 0`). Four independent lanes so the loop vectorises.
+/// `m_j = 0`). Eight independent lanes with branch-free updates so the loop
+/// vectorises; ties go to the lower index.
 #[inline]
 fn best_partner(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
-    const L: usize = 4;
-    let n = g.len();
+    const L: usize = 8;
+    let n = g.len().min(a.len()).min(m.len());
+    let (a, g, m) = (&a[..n], &g[..n], &m[..n]);
     let mut best = [0.0f64; L];
     let mut idx = [usize::MAX; L];
     let chunks = n / L;
     for c in 0..chunks {
         let base = c * L;
+        let (ac, gc, mc) = (&a[base..base + L], &g[base..base + L], &m[base..base + L]);
         for l in 0..L {
-            let t = g[base + l] - x * a[base + l];
-            let v = t * t * m[base + l];
-            if v > best[l] {
-                best[l] = v;
-                idx[l] = base + l;
-            }
+            let t = gc[l] - x * ac[l];
+            let v = t * t * mc[l];
+            let gt = v > best[l];
+            best[l] = if gt { v } else { best[l] };
+            idx[l] = if gt { base + l } else { idx[l] };
         }
     }
     let (mut bv, mut bi) = (0.0, usize::MAX);
     for l in 0..L {
-        if best[l] > bv || (best[l] == bv && idx[l] < bi && best[l] > 0.0) {
+        if best[l] > bv || (best[l] == bv && best[l] > 0.0 && idx[l] < bi) {
             bv = best[l];
             bi = idx[l];
         }
