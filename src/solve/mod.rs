@@ -112,7 +112,7 @@ pub struct L0Params {
     /// `1e-12`.
     pub swap_tol: f64,
     /// Rows keeping at most this many weights also try swaps priced with
-    /// the refit ([`l0::exact`]) once the cheap swaps stop improving; cost
+    /// the refit (`l0/exact.rs`) once the cheap swaps stop improving; cost
     /// `2 d_in k²` per row and sweep. Default 64.
     pub exact_max_k: usize,
 }

@@ -9,14 +9,14 @@
 //!   N:M         ≤ n nonzeros in every group of m consecutive inputs
 //! ```
 //!
-//! **Refit** ([`refit`]). On a fixed support `S` the optimum is
+//! **Refit** (`refit.rs`). On a fixed support `S` the optimum is
 //! `ŵ_S = w_S + A_SS⁻¹ A_{S,Sᶜ} w_{Sᶜ}` (equivalently `A_SS ŵ_S = (A w)_S`)
 //! with value `f(S) = w_{Sᶜ}ᵀ (A / A_SS) w_{Sᶜ}`, the Schur complement of
 //! `A_SS` in `A`. With `e = ŵ − w` and `g = A e`, a refit optimum is exactly
 //! `g_S = 0`. All rows' gradients at once are one product `G = (Ŵ − W) A`;
 //! we precompute `B = W A` and keep `G = Ŵ A − B`.
 //!
-//! **Swaps** ([`swap`]). Pruning `i` and keeping `j` at its best value with
+//! **Swaps** (`swap.rs`; swaps priced with the refit in `exact.rs`). Pruning `i` and keeping `j` at its best value with
 //! the rest fixed changes `f` by
 //! `Δ = −2ŵ_i g_i + ŵ_i² A_ii − (g_j − ŵ_i A_ij)² / A_jj` (new value
 //! `t* = (ŵ_i A_ij − g_j)/A_jj`); O(1) per pair given `g`, and a change `δ`
@@ -50,9 +50,9 @@
 //! Everything is f64: gradients, dot products and objectives accumulate in
 //! f64, which is what lets `Δ` be trusted down to `tol`.
 
-pub mod exact;
-pub mod refit;
-pub mod swap;
+pub(crate) mod exact;
+pub(crate) mod refit;
+pub(crate) mod swap;
 
 use super::baseline::scaled_scores;
 use super::mask::{select, top_k, Mask};
@@ -790,6 +790,40 @@ pub(crate) mod tests {
                     got.info.objective_final
                 );
             }
+        }
+    }
+
+    #[test]
+    fn edge_budgets() {
+        // Keep everything: the refit reproduces W (objective at rounding
+        // level). Keep nothing: all zeros, objective = Σ wᵀAw.
+        let mut rng = Lcg::new(4);
+        let (x, w, lambda) = instance(&mut rng, 60, 16, 4, 0.01);
+        let a = gram(&x, lambda);
+        let dense: f64 = objective(&w, &Mat::zeros(4, 16), &a);
+        for pattern in [
+            Pattern::Unstructured { sparsity: 0.0, scope: Scope::Row },
+            Pattern::Unstructured { sparsity: 0.0, scope: Scope::Layer },
+            Pattern::NofM { n: 4, m: 4 },
+        ] {
+            let mut params = l0_params(pattern);
+            params.l0.trace = true;
+            let got = solve(w.as_ref(), a.as_ref(), &params, Par::Seq).unwrap();
+            check_output(&w, &a, &got, pattern);
+            // A full refit solves A ŵ = A w: error O(ε κ(A)) relative.
+            assert!(
+                got.info.objective_final <= 1e-9 * dense,
+                "{pattern:?}: {}",
+                got.info.objective_final
+            );
+        }
+        for pattern in [
+            Pattern::Unstructured { sparsity: 0.99, scope: Scope::Row },
+            Pattern::Unstructured { sparsity: 0.999, scope: Scope::Layer },
+        ] {
+            let got = solve(w.as_ref(), a.as_ref(), &l0_params(pattern), Par::Seq).unwrap();
+            assert_eq!(got.weight, Mat::<f64>::zeros(4, 16));
+            assert!((got.info.objective_final - dense).abs() <= 1e-12 * dense);
         }
     }
 
