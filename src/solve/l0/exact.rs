@@ -30,7 +30,7 @@ use faer::{Accum, Mat, MatRef, Par, Side};
 
 /// Swaps of a single pair ranked for the pairwise search in
 /// [`best_move`]: the `TOP` best ones are combined two at a time.
-const TOP: usize = 8;
+const TOP: usize = 16;
 
 /// An exact move: prune `out`, keep `inn` (same length), objective change
 /// `delta` after the refit.

@@ -1003,13 +1003,12 @@ mod bench {
         println!("setup {:.2}s", t.elapsed().as_secs_f64());
         let lambda = ridge_lambda(h.as_ref(), 0.01);
         let a = regularised(h.as_ref(), lambda);
-        // The machine is shared: time each solver `REPS` times, keep the
+        // The machine is shared: time each solver `reps` times, keep the
         // fastest.
-        const REPS: usize = 3;
-        let timed = |params: &SolveParams| {
+        let timed = |params: &SolveParams, reps: usize| {
             let mut best = f64::INFINITY;
             let mut out = None;
-            for _ in 0..REPS {
+            for _ in 0..reps {
                 let t = Instant::now();
                 let p = prune_layer(w.as_ref(), h.as_ref(), params, par).unwrap();
                 best = best.min(t.elapsed().as_secs_f64());
@@ -1017,18 +1016,22 @@ mod bench {
             }
             (best, out.unwrap())
         };
-        for sparsity in [0.9, 0.5] {
-            let pattern = Pattern::Unstructured { sparsity, scope: Scope::Row };
+        for (pattern, reps) in [
+            (Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }, 3),
+            (Pattern::Unstructured { sparsity: 0.9, scope: Scope::Layer }, 1),
+            (Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }, 1),
+            (Pattern::NofM { n: 2, m: 4 }, 1),
+        ] {
             let mut params = SolveParams { pattern, ridge_alpha: 0.01, ..SolveParams::default() };
-            let (t_obs, ob) = timed(&params);
+            let (t_obs, ob) = timed(&params, reps);
             let e_obs = relative_error(w.as_ref(), ob.weight.as_ref(), h.as_ref(), par);
             params.method = Method::L0;
             params.l0.trace = true;
-            let (t_l0, l0) = timed(&params);
+            let (t_l0, l0) = timed(&params, reps);
             let e_l0 = relative_error(w.as_ref(), l0.weight.as_ref(), h.as_ref(), par);
             let _ = &a;
             println!(
-                "sparsity {sparsity}: obs {t_obs:.2}s err {e_obs:.4e} | l0 {t_l0:.2}s ({:.1}x) err {e_l0:.4e} ({:+.1}%) init {:?} sweeps {} swaps {} cg {}",
+                "{pattern:?}: obs {t_obs:.2}s err {e_obs:.4e} | l0 {t_l0:.2}s ({:.1}x) err {e_l0:.4e} ({:+.1}%) init {:?} sweeps {} swaps {} cg {}",
                 t_l0 / t_obs,
                 100.0 * (e_l0 / e_obs - 1.0),
                 l0.info.init,
