@@ -16,11 +16,18 @@
 //! `g_S = 0`. All rows' gradients at once are one product `G = (Ŵ − W) A`;
 //! we precompute `B = W A` and keep `G = Ŵ A − B`.
 //!
-//! **Swaps** (`swap.rs`; swaps priced with the refit in `exact.rs`). Pruning `i` and keeping `j` at its best value with
+//! **Swaps** (`swap.rs`). Pruning `i` and keeping `j` at its best value with
 //! the rest fixed changes `f` by
 //! `Δ = −2ŵ_i g_i + ŵ_i² A_ii − (g_j − ŵ_i A_ij)² / A_jj` (new value
 //! `t* = (ŵ_i A_ij − g_j)/A_jj`); O(1) per pair given `g`, and a change `δ`
 //! of coordinate `c` updates `g += δ A_{:,c}`.
+//!
+//! **Swaps priced with the refit** (`exact.rs`). At a refit optimum, with
+//! `M = A_SS⁻¹`, the exact change of `f(S)` for `i` out, `j` in is
+//! `ŵ_i²/M_ii − g'_j²/s'_j` (OBS removal, then adding `j` with the Schur
+//! complement `s'_j` of `A_jj` w.r.t. `S∖{i}`); the same block formulas
+//! price several swaps at once. These cost `2 d_in k²` per row, so they run
+//! only when the cheap swaps stall and only for `k ≤ exact_max_k`.
 //!
 //! **Algorithm** ([`solve`]):
 //! 1. Two starts, both refit exactly: the activation-scaled magnitude mask
@@ -29,12 +36,16 @@
 //!    row and N:M) or for the whole layer (per-layer scope, whose row budgets
 //!    differ between the starts) the better one is kept; [`SolveInfo::init`]
 //!    says which: `"scaled+refit"`, `"obs+refit"` or `"mixed"`.
-//! 2. Sweeps: per-layer budget moves between rows, then for every row still
-//!    improving a batch of non-interacting swaps, then an exact refit of the
-//!    rows that changed. A row whose sweep finds no improving swap is a local
-//!    optimum and is left alone (per-layer scope wakes rows touched by a
-//!    budget move). Stops when no row improves or the budget
-//!    ([`crate::solve::L0Params::max_sweeps`], `max_seconds`) runs out.
+//! 2. Sweeps: per-layer budget moves between rows (fixed-others prices;
+//!    prices with the refit when those find nothing), then for every row
+//!    still improving a batch of non-interacting swaps; a row where none
+//!    improves tries the best move priced with the refit (a single swap, a
+//!    pair of swaps, or an N:M group re-choice). Then an exact refit of the
+//!    rows that changed. A row with no improving move is a local optimum and
+//!    is left alone (per-layer scope wakes rows touched by a budget move).
+//!    Stops when no row improves or the budget
+//!    ([`crate::solve::L0Params::max_sweeps`], `max_seconds`, checked between
+//!    sweeps) runs out.
 //! 3. Each accepted move has `Δ < −tol` exactly and a refit minimises `f` on
 //!    its support, so the objective never increases; a row that rounding
 //!    made worse is restored from the copy taken before the sweep.
@@ -44,9 +55,14 @@
 //! parallel with rayon when `par` allows. The swap scoring is
 //! O(k·(d_in − k)) per row per sweep and never inverts `A_SS`.
 //!
+//! Refits use per-row Cholesky up to `k ≤ L0Params::chol_limit(d_in)` (a
+//! cost model: `k³/3` against ~40 CG iterations), batched CG beyond.
+//!
 //! Memory: `A` is borrowed; the solver keeps `W`, `B`, `Ŵ`, `G` and a copy of
-//! `Ŵ` (five `d_out x d_in` f64 matrices, plus a second `Ŵ, G` pair while the
-//! two starts are compared and two more inside the batched CG refit).
+//! `Ŵ` (five `d_out x d_in` f64 matrices, plus a second `Ŵ, G` pair and the
+//! OBS sweep's own buffers while the two starts are built, and at most two
+//! more inside the batched CG refit). Per thread, a Cholesky refit holds one
+//! `k x k` matrix; nothing is `d_in²` per row.
 //! Everything is f64: gradients, dot products and objectives accumulate in
 //! f64, which is what lets `Δ` be trusted down to `tol`.
 
@@ -294,7 +310,9 @@ pub fn solve(
     let ob = obs::sweep(w, a, pattern, params.obs_block, par)?;
     let mut keep_b = mask_support(&Mask::nonzeros(ob.weight.as_ref()));
     complete_support(&mut keep_b, &scores, pattern);
+    drop(scores);
     let ob_rm: Vec<f64> = (0..d_out * d_in).map(|i| ob.weight[(i / d_in, i % d_in)]).collect();
+    drop(ob);
     let mut sb = start_state(keep_b, Some(&ob_rm));
     drop(ob_rm);
     cg_iters += refit_rows(&prob, &mut sb, &all, params, par)?;
