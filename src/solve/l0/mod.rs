@@ -82,6 +82,9 @@ use swap::{Cand, RowMut};
 /// Rows scored together against one column of `A` (cache blocking).
 const ROW_BLOCK: usize = 16;
 
+/// Rounds of cheap budget moves per sweep (per-layer scope).
+const BUDGET_ROUNDS: usize = 16;
+
 /// Column `c` of a column-major `A` as a slice.
 #[inline]
 pub(crate) fn col(a: MatRef<'_, f64>, c: usize) -> &'_ [f64] {
@@ -367,11 +370,26 @@ pub fn solve(
         prev_f.copy_from_slice(&state.f);
         let mut changed = vec![false; d_out];
 
+        // Rows a cheap budget move touched (no exact moves this sweep: not at
+        // a refit optimum) and rows an exact budget move flipped (no moves at
+        // all until refit: above their priced value until then).
+        let mut flipped = vec![false; d_out];
         if layer {
             let exact_k = params.l0.exact_max_k.min(params.l0.chol_limit(d_in));
             let mut rows = rows_mut(&mut state, d_in);
-            let (mut moves, _, mut touched) =
-                swap::budget_moves(a, &prob.diag, &prob.inv_diag, &mut rows, layer_tol);
+            let mut moves = 0;
+            let mut touched = Vec::new();
+            // Several rounds, each re-pricing every row with its current g,
+            // so budget can flow further than one weight per row per sweep.
+            for _ in 0..BUDGET_ROUNDS {
+                let (m, _, t) =
+                    swap::budget_moves(a, &prob.diag, &prob.inv_diag, &mut rows, layer_tol);
+                moves += m;
+                touched.extend(t);
+                if m == 0 {
+                    break;
+                }
+            }
             if moves == 0 && rows.iter().all(|r| r.keep.iter().filter(|&&x| x).count() <= exact_k) {
                 // The cheap prices stall: price removals and additions with
                 // the refit (exact, the rows being independent).
@@ -389,6 +407,8 @@ pub fn solve(
                         &exact::Move { delta: 0.0, out: vec![i], inn: vec![] },
                     );
                     rows[ra].keep[j] = true;
+                    flipped[ra] = true;
+                    flipped[rr] = true;
                     touched.push(ra);
                     touched.push(rr);
                     moves += 1;
@@ -403,7 +423,8 @@ pub fn solve(
         }
 
         let exact_k = params.l0.exact_max_k.min(params.l0.chol_limit(d_in));
-        let swaps = sweep_rows(&prob, &mut state, &active, &changed, &tol, pattern, exact_k, par);
+        let swaps =
+            sweep_rows(&prob, &mut state, &active, &changed, &flipped, &tol, pattern, exact_k, par);
         for r in 0..d_out {
             info.swaps += swaps[r];
             if swaps[r] > 0 {
@@ -498,6 +519,7 @@ fn sweep_rows(
     state: &mut State,
     active: &[bool],
     moved: &[bool],
+    flipped: &[bool],
     tol: &[f64],
     pattern: Pattern,
     exact_max_k: usize,
@@ -514,11 +536,13 @@ fn sweep_rows(
         blocks.push((r0, block, sw));
     }
     for_each(blocks, par, |(r0, block, sw)| {
-        // Rows a budget move just touched are not at a refit optimum (an
-        // exact move leaves them above it until refit), so they wait for the
-        // refit at the end of the sweep.
-        let (ids, mut rows): (Vec<usize>, Vec<RowMut<'_>>) =
-            block.into_iter().enumerate().filter(|(i, _)| active[r0 + i] && !moved[r0 + i]).unzip();
+        // Rows an exact budget move flipped sit above their priced value
+        // until refit, so they wait for the refit at the end of the sweep.
+        let (ids, mut rows): (Vec<usize>, Vec<RowMut<'_>>) = block
+            .into_iter()
+            .enumerate()
+            .filter(|(i, _)| active[r0 + i] && !flipped[r0 + i])
+            .unzip();
         if rows.is_empty() {
             return;
         }
@@ -547,14 +571,14 @@ fn sweep_rows(
                 }
             }
         }
-        // Rows where the cheap swaps found nothing sit at a refit optimum:
-        // price swaps exactly.
+        // Rows where the cheap swaps found nothing (and no budget move came)
+        // sit at a refit optimum: price moves with the refit.
         let group = match pattern {
             Pattern::NofM { m, .. } => Some(m),
             Pattern::Unstructured { .. } => None,
         };
         for (row, &i) in rows.iter_mut().zip(&ids) {
-            if sw[i] > 0 || row.keep.iter().filter(|&&k| k).count() > exact_max_k {
+            if sw[i] > 0 || moved[r0 + i] || row.keep.iter().filter(|&&k| k).count() > exact_max_k {
                 continue;
             }
             if let Some(mv) = exact::best_move(prob.a, row, group) {
