@@ -22,11 +22,10 @@
 //! [`super::swap`] (O(k·d_in)), so these moves are used once the cheap ones
 //! stop improving, and only on rows with `k ≤ L0Params::exact_max_k`.
 
-use super::col;
 use super::swap::RowMut;
+use super::{col, refit};
 use faer::linalg::matmul::matmul;
-use faer::linalg::solvers::DenseSolveCore;
-use faer::{Accum, Mat, MatRef, Par, Side};
+use faer::{Accum, Mat, MatRef, Par};
 
 /// Swaps of a single pair ranked for the pairwise search in
 /// [`best_move`]: the `TOP` best ones are combined two at a time.
@@ -64,8 +63,10 @@ impl Priced {
         if k == 0 || out.is_empty() {
             return None;
         }
-        let ass = Mat::from_fn(k, k, |p, q| a[(s[p], s[q])]);
-        let m = ass.llt(Side::Lower).ok()?.inverse();
+        let mut l = Mat::from_fn(k, k, |p, q| a[(s[p], s[q])]);
+        refit::llt_in_place(l.as_mut()).ok()?;
+        let mut m = Mat::<f64>::identity(k, k);
+        refit::llt_solve_in_place(l.as_ref(), m.as_mut());
         let aos = Mat::from_fn(out.len(), k, |q, p| col(a, s[p])[out[q]]);
         let mut v = Mat::<f64>::zeros(out.len(), k);
         matmul(v.as_mut(), Accum::Replace, aos.as_ref(), m.as_ref(), 1.0, Par::Seq);
@@ -288,8 +289,13 @@ pub(crate) fn budget_prices(a: MatRef<'_, f64>, row: &RowMut<'_>) -> Prices {
     let Some(pr) = Priced::new(a, row.keep) else {
         // Full support: only removals.
         let s: Vec<usize> = (0..d).collect();
-        let all = Mat::from_fn(d, d, |p, q| a[(s[p], s[q])]);
-        let rem = all.llt(Side::Lower).ok().map(|l| l.inverse()).and_then(|m| {
+        let mut l = Mat::from_fn(d, d, |p, q| a[(s[p], s[q])]);
+        let inverse = refit::llt_in_place(l.as_mut()).ok().map(|()| {
+            let mut m = Mat::<f64>::identity(d, d);
+            refit::llt_solve_in_place(l.as_ref(), m.as_mut());
+            m
+        });
+        let rem = inverse.and_then(|m| {
             (0..d)
                 .map(|i| (row.w_hat[i] * row.w_hat[i] / m[(i, i)], i))
                 .min_by(|p, q| p.0.total_cmp(&q.0))
@@ -318,7 +324,7 @@ pub(crate) fn budget_prices(a: MatRef<'_, f64>, row: &RowMut<'_>) -> Prices {
 pub(crate) fn flip(a: MatRef<'_, f64>, row: &mut RowMut<'_>, mv: &Move) {
     for &i in &mv.out {
         let wi = row.w_hat[i];
-        super::refit::axpy(row.g, -wi, col(a, i));
+        refit::axpy(row.g, -wi, col(a, i));
         row.w_hat[i] = 0.0;
         row.keep[i] = false;
     }

@@ -30,9 +30,13 @@
 
 use super::{col, Problem, State};
 use crate::solve::SolveError;
+use faer::dyn_stack::{MemBuffer, MemStack, StackReq};
+use faer::linalg::cholesky::llt::factor::{
+    cholesky_in_place, cholesky_in_place_scratch, LltRegularization,
+};
+use faer::linalg::cholesky::llt::solve as llt_solve;
 use faer::linalg::matmul::matmul;
-use faer::linalg::solvers::Solve;
-use faer::{Accum, Mat, MatMut, MatRef, Par, Side};
+use faer::{Accum, Conj, Mat, MatMut, MatRef, Par};
 
 /// `g = A_{:,S} ŵ_S − b` and `f = (ŵ − w)ᵀ g` for one row, from scratch.
 pub(crate) fn gradient_row(
@@ -69,6 +73,32 @@ pub(crate) fn axpy(y: &mut [f64], alpha: f64, x: &[f64]) {
     }
 }
 
+/// Factor the SPD matrix `m` in place as `L Lᵀ` (lower triangle),
+/// sequentially: rows are the parallel dimension, so a per-row
+/// factorisation must not spawn work of its own.
+///
+/// # Errors
+/// [`SolveError::NotPositiveDefinite`] when a pivot is not positive.
+pub(crate) fn llt_in_place(m: MatMut<'_, f64>) -> Result<(), SolveError> {
+    let n = m.nrows();
+    let mut buf = MemBuffer::new(cholesky_in_place_scratch::<f64>(n, Par::Seq, Default::default()));
+    cholesky_in_place(
+        m,
+        LltRegularization::default(),
+        Par::Seq,
+        MemStack::new(&mut buf),
+        Default::default(),
+    )
+    .map(|_| ())
+    .map_err(|_| SolveError::NotPositiveDefinite { lambda: f64::NAN })
+}
+
+/// Solve `L Lᵀ X = R` in place with the factor from [`llt_in_place`].
+pub(crate) fn llt_solve_in_place(l: MatRef<'_, f64>, rhs: MatMut<'_, f64>) {
+    let mut buf = MemBuffer::new(StackReq::EMPTY);
+    llt_solve::solve_in_place_with_conj(l, Conj::No, rhs, Par::Seq, MemStack::new(&mut buf));
+}
+
 /// Refit one row by a dense Cholesky solve of `A_SS ŵ_S = b_S`; rebuilds
 /// `g` and returns the row objective.
 ///
@@ -86,12 +116,10 @@ pub(crate) fn cholesky_row(
     w_hat.fill(0.0);
     if !s.is_empty() {
         let k = s.len();
-        let ass = Mat::from_fn(k, k, |p, q| a[(s[p], s[q])]);
-        let rhs = Mat::from_fn(k, 1, |p, _| b[s[p]]);
-        let llt = ass
-            .llt(Side::Lower)
-            .map_err(|_| SolveError::NotPositiveDefinite { lambda: f64::NAN })?;
-        let x = llt.solve(rhs);
+        let mut l = Mat::from_fn(k, k, |p, q| a[(s[p], s[q])]);
+        let mut x = Mat::from_fn(k, 1, |p, _| b[s[p]]);
+        llt_in_place(l.as_mut())?;
+        llt_solve_in_place(l.as_ref(), x.as_mut());
         for (p, &c) in s.iter().enumerate() {
             w_hat[c] = x[(p, 0)];
         }
