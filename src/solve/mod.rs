@@ -91,7 +91,8 @@ impl Method {
 /// Settings of the local-search solver.
 #[derive(Clone, Debug, PartialEq)]
 pub struct L0Params {
-    /// Maximum number of swap sweeps per layer.
+    /// Maximum number of swap sweeps per layer. Default 20 (a 1536-wide
+    /// layer converges in 6–7 sweeps at 50% and 90% sparsity).
     pub max_sweeps: usize,
     /// Wall-clock budget per layer in seconds (`None`: unlimited).
     pub max_seconds: Option<f64>,
