@@ -91,17 +91,56 @@ impl Method {
 /// Settings of the local-search solver.
 #[derive(Clone, Debug, PartialEq)]
 pub struct L0Params {
-    /// Maximum number of swap sweeps per layer.
+    /// Maximum number of swap sweeps per layer. Default 20 (a 1536-wide
+    /// layer converges in 6–7 sweeps at 50% and 90% sparsity).
     pub max_sweeps: usize,
     /// Wall-clock budget per layer in seconds (`None`: unlimited).
     pub max_seconds: Option<f64>,
     /// Record the objective after every sweep in [`SolveInfo::trace`].
     pub trace: bool,
+    /// Largest support refit by a dense per-row Cholesky solve of `A_SS`;
+    /// when some row keeps more, all rows are refit together by batched
+    /// conjugate gradients. `None` (default): see [`L0Params::chol_limit`].
+    pub chol_max: Option<usize>,
+    /// Relative residual `‖g_S‖ / ‖(A w)_S‖` at which a CG refit of a row
+    /// stops. Default `1e-6`: the objective error left is quadratic in it,
+    /// and swap prices use the exact gradient of whatever the refit returns.
+    pub cg_tol: f64,
+    /// Iteration cap of one CG refit. Default 500.
+    pub cg_max_iter: usize,
+    /// A move is accepted when it lowers the row objective by more than
+    /// `swap_tol · wᵀAw` (the objective of pruning the whole row). Default
+    /// `1e-12`.
+    pub swap_tol: f64,
+    /// Rows keeping at most this many weights also try swaps priced with
+    /// the refit (`l0/exact.rs`) once the cheap swaps stop improving; cost
+    /// `2 d_in k²` per row and sweep. Default 64.
+    pub exact_max_k: usize,
+}
+
+impl L0Params {
+    /// The support size up to which refits use per-row Cholesky. The
+    /// automatic limit compares costs per row: `k³/3` for the factorisation
+    /// against about 40 CG iterations of `2·d_in²` each (one row of the
+    /// batched product `P A`), i.e. `k ≤ cbrt(240 · d_in²)` (≈ 830 for
+    /// `d_in = 1536`, ≈ 3070 for `d_in = 11008`).
+    pub fn chol_limit(&self, d_in: usize) -> usize {
+        self.chol_max.unwrap_or_else(|| (240.0 * (d_in as f64).powi(2)).cbrt() as usize)
+    }
 }
 
 impl Default for L0Params {
     fn default() -> Self {
-        L0Params { max_sweeps: 20, max_seconds: None, trace: false }
+        L0Params {
+            max_sweeps: 20,
+            max_seconds: None,
+            trace: false,
+            chol_max: None,
+            cg_tol: 1e-6,
+            cg_max_iter: 500,
+            swap_tol: 1e-12,
+            exact_max_k: 64,
+        }
     }
 }
 
@@ -146,8 +185,12 @@ pub struct SolveInfo {
     pub init: Option<&'static str>,
     /// Local-search sweeps run.
     pub sweeps: usize,
-    /// Swap moves accepted.
+    /// Swap moves accepted (per-layer scope: including moves of budget
+    /// between rows).
     pub swaps: usize,
+    /// Conjugate-gradient iterations spent in refits (0 when every refit was
+    /// a dense Cholesky solve).
+    pub refit_iterations: usize,
     /// Objective after every sweep (when tracing), starting with the initial one.
     pub trace: Vec<f64>,
 }
