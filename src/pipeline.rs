@@ -28,8 +28,13 @@ pub const AUTO_RIDGE_GRID: &[f64] = &[0.01, 0.03, 0.1, 0.3, 1.0];
 pub enum Ridge {
     /// A fixed α for every layer.
     Fixed(f64),
-    /// Per layer, the α of [`AUTO_RIDGE_GRID`] with the lowest held-out error.
-    Auto,
+    /// Per layer, the α of [`AUTO_RIDGE_GRID`] with the lowest held-out
+    /// error. A layer without held-out rows uses `fallback`, or is an input
+    /// error when there is none (the user asked for `auto` explicitly).
+    Auto {
+        /// α for layers without held-out rows.
+        fallback: Option<f64>,
+    },
 }
 
 /// Everything a prune run needs, validated by the caller's flag parsing.
@@ -246,7 +251,7 @@ fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Ve
                 w.name, cfg.holdout
             )));
         }
-        if cfg.ridge == Ridge::Auto && fitted == rows {
+        if cfg.ridge == (Ridge::Auto { fallback: None }) && fitted == rows {
             return Err(Error::input(format!(
                 "--ridge auto needs held-out rows, but '{}' has {rows} rows and --holdout {} holds none out",
                 w.name, cfg.holdout
@@ -355,9 +360,12 @@ fn prune_one(
     let alpha = match cfg.ridge {
         Ridge::Fixed(a) => a,
         // The ridge does not change score-only methods: nothing to choose.
-        Ridge::Auto if matches!(cfg.method, Method::Magnitude | Method::Scaled) => 0.01,
-        Ridge::Auto => {
-            let held = held.expect("planned: auto ridge has held-out rows");
+        Ridge::Auto { .. } if matches!(cfg.method, Method::Magnitude | Method::Scaled) => 0.01,
+        Ridge::Auto { fallback } if held.is_none() => {
+            fallback.expect("planned: explicit auto ridge has held-out rows")
+        }
+        Ridge::Auto { .. } => {
+            let held = held.expect("checked above");
             let mut best = (f64::INFINITY, AUTO_RIDGE_GRID[0]);
             // The local search is scored through the OBS sweep, a one-shot
             // proxy that picks nearly the same α at a fraction of the cost
@@ -447,7 +455,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     let (sparsity, pattern, scope) = pattern_label(cfg.pattern);
     let ridge = match cfg.ridge {
         Ridge::Fixed(a) => serde_json::json!(a),
-        Ridge::Auto => serde_json::json!("auto"),
+        Ridge::Auto { .. } => serde_json::json!("auto"),
     };
     let settings = Settings {
         method: cfg.method.name().to_string(),

@@ -471,3 +471,55 @@ fn half_precision_in_and_out() {
         assert_eq!(nz, 24, "{dtype}");
     }
 }
+
+#[test]
+fn ridge_auto_picks_from_the_grid_and_needs_held_out_rows() {
+    let dir = Scratch::new("ridge");
+    let (model, acts) = small_model(&dir);
+    let out = dir.path("o.safetensors");
+    let rep = dir.path("r.json");
+    let args = |extra: &[&str]| {
+        let mut v =
+            vec!["prune", s(&model), "--activations", s(&acts), "--sparsity", "0.5", "-o", s(&out)];
+        v.extend_from_slice(&["--report", s(&rep), "--quiet"]);
+        v.extend_from_slice(extra);
+        v.iter().map(|x| x.to_string()).collect::<Vec<_>>()
+    };
+    let run = |extra: &[&str]| {
+        let a = args(extra);
+        let a: Vec<&str> = a.iter().map(String::as_str).collect();
+        lopper(&a)
+    };
+    // Default: auto, each layer's alpha from the grid.
+    let o = run(&[]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
+    assert_eq!(r["settings"]["ridge"], "auto");
+    assert_eq!(r["settings"]["method"], "l0");
+    for l in r["layers"].as_array().unwrap() {
+        let a = l["ridge_alpha"].as_f64().unwrap();
+        assert!([0.01, 0.03, 0.1, 0.3, 1.0].contains(&a), "{a}");
+    }
+    // Default without held-out rows falls back to 0.01 ...
+    let o = run(&["--holdout", "0"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
+    assert_eq!(r["layers"][0]["ridge_alpha"], 0.01);
+    assert_eq!(r["layers"][0]["rel_error_holdout"], serde_json::Value::Null);
+    // ... but an explicit auto without them is an input error.
+    std::fs::remove_file(&out).unwrap();
+    std::fs::remove_file(&rep).unwrap();
+    fails(
+        &dir,
+        &args(&["--holdout", "0", "--ridge", "auto"])
+            .iter()
+            .map(String::as_str)
+            .collect::<Vec<_>>(),
+        &["--ridge auto", "held-out"],
+    );
+    // A fixed alpha is used as given.
+    let o = run(&["--ridge", "0.25"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
+    assert_eq!(r["layers"][1]["ridge_alpha"], 0.25);
+}

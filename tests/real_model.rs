@@ -246,6 +246,9 @@ fn l0_beats_the_obs_sweep_on_every_layer() {
                 target[1],
                 "--method",
                 method,
+                // Same objective for both solvers.
+                "--ridge",
+                "0.01",
                 "-o",
                 out.to_str().unwrap(),
                 "--report",

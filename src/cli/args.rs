@@ -83,7 +83,7 @@ pub struct PruneArgs {
     #[arg(long, value_enum, default_value = "row")]
     pub scope: ScopeArg,
     /// Solver.
-    #[arg(long, value_enum, default_value = "obs")]
+    #[arg(long, value_enum, default_value = "l0")]
     pub method: MethodArg,
     /// Output: a .safetensors file for a single-file model, a directory for
     /// a sharded model or a model directory.
@@ -95,10 +95,11 @@ pub struct PruneArgs {
     /// Write the local-search objective after every sweep as JSON lines.
     #[arg(long, value_name = "FILE")]
     pub trace: Option<PathBuf>,
-    /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto` to pick α per layer by
-    /// held-out error.
-    #[arg(long, value_name = "ALPHA|auto", default_value = "0.01", allow_hyphen_values = true)]
-    pub ridge: String,
+    /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto`: per layer, the α in
+    /// {0.01, 0.03, 0.1, 0.3, 1} with the lowest error on the held-out rows
+    /// [default: auto, or 0.01 for a layer without held-out rows]
+    #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
+    pub ridge: Option<String>,
     /// Fraction of activation rows held out from the solver to measure
     /// overfitting, in [0, 1).
     #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]

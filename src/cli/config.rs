@@ -6,6 +6,9 @@ use crate::pipeline::{PruneConfig, Ridge};
 use crate::select::Selection;
 use crate::solve::{L0Params, Method, Pattern, Scope};
 
+/// α for layers that have no held-out rows to choose one with.
+pub const DEFAULT_RIDGE: f64 = 0.01;
+
 /// Parse `N:M`.
 pub fn parse_pattern(s: &str) -> Result<(usize, usize), String> {
     let bad =
@@ -47,9 +50,10 @@ pub fn prune_config(args: &PruneArgs) -> Result<PruneConfig, String> {
         }
         _ => return Err("give exactly one of --sparsity and --pattern".into()),
     };
-    let ridge = match args.ridge.trim() {
-        "auto" => Ridge::Auto,
-        s => match s.parse::<f64>() {
+    let ridge = match args.ridge.as_deref().map(str::trim) {
+        None => Ridge::Auto { fallback: Some(DEFAULT_RIDGE) },
+        Some("auto") => Ridge::Auto { fallback: None },
+        Some(s) => match s.parse::<f64>() {
             Ok(a) if a.is_finite() && a >= 0.0 => Ridge::Fixed(a),
             _ => return Err(format!("--ridge '{s}' must be a number >= 0 or 'auto'")),
         },

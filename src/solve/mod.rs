@@ -162,7 +162,7 @@ pub struct SolveParams {
 impl Default for SolveParams {
     fn default() -> Self {
         SolveParams {
-            method: Method::Obs,
+            method: Method::L0,
             pattern: Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row },
             ridge_alpha: 0.01,
             obs_block: 128,
