@@ -183,7 +183,7 @@ fn run() -> Result<()> {
     }
 
     if entries.iter().any(|e| e.label.is_some() || e.report.is_some()) {
-        let fmt = |v: Option<f64>| v.map_or("-".to_string(), |v| format!("{v:.4}"));
+        let fmt = |v: Option<f64>| v.map_or("-".to_string(), |v| format!("{v:.3e}"));
         println!();
         println!(
             "{:<12} {:>14} {:>16} {:>9} {:>13}",
