@@ -523,3 +523,53 @@ fn ridge_auto_picks_from_the_grid_and_needs_held_out_rows() {
     let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
     assert_eq!(r["layers"][1]["ridge_alpha"], 0.25);
 }
+
+#[test]
+fn trace_records_a_non_increasing_objective_per_layer() {
+    let dir = Scratch::new("trace");
+    let (model, acts) = small_model(&dir);
+    let out = dir.path("o.safetensors");
+    let trace = dir.path("t.jsonl");
+    let rep = dir.path("r.json");
+    let o = lopper(&[
+        "prune",
+        s(&model),
+        "--activations",
+        s(&acts),
+        "--sparsity",
+        "0.6",
+        "--method",
+        "l0",
+        "--ridge",
+        "0",
+        "-o",
+        s(&out),
+        "--trace",
+        s(&trace),
+        "--report",
+        s(&rep),
+        "--quiet",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
+    let text = std::fs::read_to_string(&trace).unwrap();
+    let lines: Vec<serde_json::Value> =
+        text.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    for layer in r["layers"].as_array().unwrap() {
+        let name = layer["name"].as_str().unwrap();
+        let f: Vec<f64> = lines
+            .iter()
+            .filter(|l| l["layer"] == name)
+            .map(|l| l["objective"].as_f64().unwrap())
+            .collect();
+        // One entry for the start plus one per sweep.
+        assert_eq!(f.len(), layer["sweeps"].as_u64().unwrap() as usize + 1, "{name}");
+        assert!(f.windows(2).all(|p| p[1] <= p[0]), "{name}: {f:?}");
+        assert_eq!(f[0], layer["objective_initial"].as_f64().unwrap(), "{name}");
+        let last = *f.last().unwrap();
+        assert!(
+            (last - layer["objective_final"].as_f64().unwrap()).abs() <= 1e-12 * last.max(1.0),
+            "{name}"
+        );
+    }
+}

@@ -110,10 +110,11 @@ pub struct PruneArgs {
     /// Do not prune tensors matching GLOB (repeatable).
     #[arg(long, value_name = "GLOB")]
     pub skip: Vec<String>,
-    /// Local search: most swap sweeps per layer.
+    /// Local search: most swap sweeps per layer [default: 20]
     #[arg(long, value_name = "N")]
     pub max_sweeps: Option<usize>,
-    /// Local search: most seconds per layer.
+    /// Local search: most seconds per layer, checked between sweeps
+    /// [default: no limit]
     #[arg(long, value_name = "SECS")]
     pub layer_seconds: Option<f64>,
     /// Worker threads (0 = all cores).
