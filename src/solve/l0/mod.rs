@@ -104,6 +104,8 @@ pub(crate) struct Problem<'s> {
     pub dense: Vec<f64>,
     pub diag: Vec<f64>,
     pub inv_diag: Vec<f64>,
+    /// `A` rounded to f32, for the partner search of the swap scoring.
+    pub a32: Mat<f32>,
 }
 
 impl<'s> Problem<'s> {
@@ -132,7 +134,8 @@ impl<'s> Problem<'s> {
             .collect();
         let diag: Vec<f64> = (0..d_in).map(|j| a[(j, j)]).collect();
         let inv_diag = diag.iter().map(|&x| 1.0 / x).collect();
-        Problem { a, d_out, d_in, w: wr, b, dense, diag, inv_diag }
+        let a32 = Mat::from_fn(d_in, d_in, |i, j| a[(i, j)] as f32);
+        Problem { a, d_out, d_in, w: wr, b, dense, diag, inv_diag, a32 }
     }
 }
 
@@ -173,6 +176,26 @@ impl State {
     }
 }
 
+/// Wall-clock time per phase, accumulated.
+#[derive(Default)]
+struct Phases {
+    done: Vec<(&'static str, f64)>,
+    mark: Option<Instant>,
+}
+
+impl Phases {
+    /// Charge the time since the previous call (or the start) to `name`.
+    fn lap(&mut self, name: &'static str) {
+        let now = Instant::now();
+        let dt = self.mark.map_or(0.0, |m| (now - m).as_secs_f64());
+        self.mark = Some(now);
+        match self.done.iter_mut().find(|(n, _)| *n == name) {
+            Some((_, t)) => *t += dt,
+            None => self.done.push((name, dt)),
+        }
+    }
+}
+
 /// Run `f` on every item, in parallel when `par` allows.
 fn for_each<T: Send>(items: Vec<T>, par: Par, f: impl Fn(T) + Sync + Send) {
     match par {
@@ -181,48 +204,52 @@ fn for_each<T: Send>(items: Vec<T>, par: Par, f: impl Fn(T) + Sync + Send) {
     }
 }
 
-/// Whether [`refit_rows`] refits the flagged rows by per-row Cholesky.
-fn uses_cholesky(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> bool {
+/// Rows refit by CG (support larger than the Cholesky limit) among `rows`.
+fn cg_rows(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> Vec<bool> {
     keep.chunks(d_in)
         .zip(rows)
-        .filter(|(_, &r)| r)
-        .all(|(k, _)| k.iter().filter(|&&x| x).count() <= chol_max)
+        .map(|(k, &r)| r && k.iter().filter(|&&x| x).count() > chol_max)
+        .collect()
 }
 
-/// Refit the rows flagged in `rows` exactly; returns CG iterations (0 when
-/// every refit row is small enough for a dense Cholesky solve).
+/// Refit the rows flagged in `rows`: those keeping at most
+/// [`crate::solve::L0Params::chol_limit`] weights exactly by per-row
+/// Cholesky, the rest by batched CG warm-started from `ŵ`, capped at
+/// `max_iter` iterations (or stopped at `cg_tol`). Returns CG iterations.
 fn refit_rows(
     prob: &Problem<'_>,
     state: &mut State,
     rows: &[bool],
     params: &SolveParams,
+    max_iter: usize,
     par: Par,
 ) -> Result<usize, SolveError> {
     let d_in = prob.d_in;
-    if uses_cholesky(&state.keep, rows, d_in, params.l0.chol_limit(d_in)) {
-        let err = std::sync::Mutex::new(None);
-        let items: Vec<_> = state
-            .w_hat
-            .chunks_mut(d_in)
-            .zip(state.g.chunks_mut(d_in))
-            .zip(state.keep.chunks(d_in))
-            .zip(state.f.iter_mut())
-            .enumerate()
-            .filter(|(r, _)| rows[*r])
-            .collect();
-        for_each(items, par, |(r, (((w_hat, g), keep), f))| {
-            let rg = r * d_in..(r + 1) * d_in;
-            match refit::cholesky_row(prob.a, &prob.w[rg.clone()], &prob.b[rg], w_hat, keep, g) {
-                Ok(v) => *f = v,
-                Err(e) => *err.lock().unwrap() = Some(e),
-            }
-        });
-        match err.into_inner().unwrap() {
-            Some(e) => Err(e),
-            None => Ok(0),
+    let by_cg = cg_rows(&state.keep, rows, d_in, params.l0.chol_limit(d_in));
+    let err = std::sync::Mutex::new(None);
+    let items: Vec<_> = state
+        .w_hat
+        .chunks_mut(d_in)
+        .zip(state.g.chunks_mut(d_in))
+        .zip(state.keep.chunks(d_in))
+        .zip(state.f.iter_mut())
+        .enumerate()
+        .filter(|(r, _)| rows[*r] && !by_cg[*r])
+        .collect();
+    for_each(items, par, |(r, (((w_hat, g), keep), f))| {
+        let rg = r * d_in..(r + 1) * d_in;
+        match refit::cholesky_row(prob.a, &prob.w[rg.clone()], &prob.b[rg], w_hat, keep, g) {
+            Ok(v) => *f = v,
+            Err(e) => *err.lock().unwrap() = Some(e),
         }
+    });
+    if let Some(e) = err.into_inner().unwrap() {
+        return Err(e);
+    }
+    if by_cg.iter().any(|&r| r) {
+        Ok(refit::pcg(prob, state, &by_cg, params.l0.cg_tol, max_iter, par))
     } else {
-        Ok(refit::pcg(prob, state, rows, params.l0.cg_tol, params.l0.cg_max_iter, par))
+        Ok(0)
     }
 }
 
@@ -293,58 +320,78 @@ pub fn solve(
     };
     let (d_out, d_in) = (w.nrows(), w.ncols());
     let pattern = params.pattern;
+    let mut ph = Phases { mark: Some(start), ..Phases::default() };
     let prob = Problem::new(w, a, par);
     let all = vec![true; d_out];
 
-    // Start (a): scaled magnitude mask, exact refit.
     let scores = scaled_scores(w, a);
-    // A start refit by Cholesky needs no gradient beforehand; one refit by
-    // CG needs it for the warm start.
+    // A start refit only by Cholesky needs no gradient beforehand; one with
+    // CG rows needs it for the warm start.
+    let chol_max = params.l0.chol_limit(d_in);
     let start_state = |keep: Vec<bool>, from: Option<&[f64]>| {
-        if uses_cholesky(&keep, &all, d_in, params.l0.chol_limit(d_in)) {
-            State::unrefined(&prob, keep, from)
-        } else {
+        if cg_rows(&keep, &all, d_in, chol_max).iter().any(|&r| r) {
             State::from_support(&prob, keep, from, par)
+        } else {
+            State::unrefined(&prob, keep, from)
         }
     };
-    let mut sa = start_state(mask_support(&select(scores.as_ref(), pattern)), None);
-    let mut cg_iters = refit_rows(&prob, &mut sa, &all, params, par)?;
-    // Start (b): OBS sweep support, exact refit warm-started from its weights.
+    let out_of_time = || params.l0.max_seconds.is_some_and(|t| start.elapsed().as_secs_f64() >= t);
+    ph.lap("setup");
+    // Start (b): the OBS sweep's support, refit warm-started from its weights.
     let ob = obs::sweep(w, a, pattern, params.obs_block, par)?;
+    ph.lap("obs sweep");
     let mut keep_b = mask_support(&Mask::nonzeros(ob.weight.as_ref()));
     complete_support(&mut keep_b, &scores, pattern);
-    drop(scores);
     let ob_rm: Vec<f64> = (0..d_out * d_in).map(|i| ob.weight[(i / d_in, i % d_in)]).collect();
     drop(ob);
     let mut sb = start_state(keep_b, Some(&ob_rm));
     drop(ob_rm);
-    cg_iters += refit_rows(&prob, &mut sb, &all, params, par)?;
+    let sweep_iter = params.l0.cg_sweep_iter;
+    let mut cg_iters = refit_rows(&prob, &mut sb, &all, params, sweep_iter, par)?;
+    ph.lap("start obs");
+    // Start (a): the scaled magnitude mask, refit warm-started from `W` on
+    // it; skipped when the time budget is already spent.
+    let sa = if out_of_time() {
+        None
+    } else {
+        let mut sa = start_state(mask_support(&select(scores.as_ref(), pattern)), None);
+        cg_iters += refit_rows(&prob, &mut sa, &all, params, sweep_iter, par)?;
+        Some(sa)
+    };
+    drop(scores);
+    ph.lap("start scaled");
 
     let layer = matches!(pattern, Pattern::Unstructured { scope: Scope::Layer, .. });
     let mut state;
     let init;
-    if layer {
-        (state, init) =
-            if sb.total() < sa.total() { (sb, "obs+refit") } else { (sa, "scaled+refit") };
-    } else {
-        let mut took_b = 0;
-        for r in 0..d_out {
-            if sb.f[r] < sa.f[r] {
-                let rg = r * d_in..(r + 1) * d_in;
-                sa.w_hat[rg.clone()].copy_from_slice(&sb.w_hat[rg.clone()]);
-                sa.g[rg.clone()].copy_from_slice(&sb.g[rg.clone()]);
-                sa.keep[rg.clone()].copy_from_slice(&sb.keep[rg]);
-                sa.f[r] = sb.f[r];
-                took_b += 1;
-            }
+    match sa {
+        None => (state, init) = (sb, "obs+refit"),
+        Some(sa) if layer => {
+            (state, init) =
+                if sb.total() <= sa.total() { (sb, "obs+refit") } else { (sa, "scaled+refit") };
         }
-        drop(sb);
-        state = sa;
-        init = match took_b {
-            0 => "scaled+refit",
-            t if t == d_out => "obs+refit",
-            _ => "mixed",
-        };
+        Some(sa) => {
+            let mut took_a = 0;
+            for r in 0..d_out {
+                if sa.f[r] < sb.f[r] {
+                    let rg = r * d_in..(r + 1) * d_in;
+                    sb.w_hat[rg.clone()].copy_from_slice(&sa.w_hat[rg.clone()]);
+                    sb.g[rg.clone()].copy_from_slice(&sa.g[rg.clone()]);
+                    sb.keep[rg.clone()].copy_from_slice(&sa.keep[rg]);
+                    sb.f[r] = sa.f[r];
+                    took_a += 1;
+                }
+            }
+            if std::env::var("LOPPER_DBG").is_ok() {
+                eprintln!("scaled start better on {took_a}/{d_out} rows");
+            }
+            state = sb;
+            init = match took_a {
+                0 => "obs+refit",
+                t if t == d_out => "scaled+refit",
+                _ => "mixed",
+            };
+        }
     }
 
     let mut info = SolveInfo { init: Some(init), ..SolveInfo::default() };
@@ -369,6 +416,7 @@ pub fn solve(
         prev_keep.copy_from_slice(&state.keep);
         prev_f.copy_from_slice(&state.f);
         let mut changed = vec![false; d_out];
+        ph.lap("sweep refits");
 
         // Rows a cheap budget move touched (no exact moves this sweep: not at
         // a refit optimum) and rows an exact budget move flipped (no moves at
@@ -415,6 +463,7 @@ pub fn solve(
                 }
             }
             drop(rows);
+            ph.lap("budget moves");
             info.swaps += moves;
             for r in touched {
                 changed[r] = true;
@@ -434,53 +483,27 @@ pub fn solve(
             }
         }
         info.sweeps += 1;
+        if std::env::var("LOPPER_DBG").is_ok() {
+            let n_act = active.iter().filter(|&&x| x).count();
+            let n_sw: usize = swaps.iter().sum();
+            eprintln!(
+                "sweep {}: {n_act} active rows, {n_sw} swaps, {:.2}s cands {} rescans {}",
+                info.sweeps,
+                ph.mark.map_or(0.0, |m| m.elapsed().as_secs_f64()),
+                swap::CANDS.swap(0, std::sync::atomic::Ordering::Relaxed),
+                swap::RESCANS.swap(0, std::sync::atomic::Ordering::Relaxed)
+            );
+        }
+        ph.lap("sweep swaps");
         if !changed.iter().any(|&c| c) {
             if params.l0.trace {
                 info.trace.push(state.total());
             }
             break;
         }
-        cg_iters += refit_rows(&prob, &mut state, &changed, params, par)?;
+        cg_iters += refit_rows(&prob, &mut state, &changed, params, sweep_iter, par)?;
 
-        // Keep the best state: every move and refit lowers f exactly (per
-        // row, or in total for per-layer scope, where a donor row rises), so
-        // an increase can only be rounding; restore the rows it affects.
-        let restore: Vec<usize> = if layer {
-            let (now, before) = (state.total(), prev_f.iter().sum::<f64>());
-            debug_assert!(
-                now <= before + 1e-9 * prob.dense.iter().sum::<f64>(),
-                "objective rose from {before} to {now}"
-            );
-            if now > before {
-                (0..d_out).collect()
-            } else {
-                Vec::new()
-            }
-        } else {
-            (0..d_out)
-                .filter(|&r| {
-                    debug_assert!(
-                        state.f[r] <= prev_f[r] + 1e-9 * prob.dense[r],
-                        "row {r}: objective rose from {} to {}",
-                        prev_f[r],
-                        state.f[r]
-                    );
-                    state.f[r] > prev_f[r]
-                })
-                .collect()
-        };
-        for r in restore {
-            let rg = r * d_in..(r + 1) * d_in;
-            state.w_hat[rg.clone()].copy_from_slice(&prev_w[rg.clone()]);
-            state.keep[rg.clone()].copy_from_slice(&prev_keep[rg.clone()]);
-            state.f[r] = refit::gradient_row(
-                a,
-                &prob.w[rg.clone()],
-                &prob.b[rg.clone()],
-                &state.w_hat[rg.clone()],
-                &state.keep[rg.clone()],
-                &mut state.g[rg],
-            );
+        for r in restore_worse(&prob, &mut state, &prev_w, &prev_keep, &prev_f, layer) {
             active[r] = false;
         }
         if params.l0.trace {
@@ -488,6 +511,21 @@ pub fn solve(
         }
     }
 
+    ph.lap("sweep refits");
+
+    // Final refit of the rows refit by capped CG so far, to `cg_tol`.
+    let loose = cg_rows(&state.keep, &all, d_in, chol_max);
+    if loose.iter().any(|&r| r) {
+        prev_w.copy_from_slice(&state.w_hat);
+        prev_keep.copy_from_slice(&state.keep);
+        prev_f.copy_from_slice(&state.f);
+        cg_iters += refit_rows(&prob, &mut state, &loose, params, params.l0.cg_max_iter, par)?;
+        restore_worse(&prob, &mut state, &prev_w, &prev_keep, &prev_f, layer);
+        if let Some(last) = info.trace.last_mut() {
+            *last = last.min(state.total());
+        }
+    }
+    ph.lap("final refit");
     info.objective_final = state.total();
     info.refit_iterations = cg_iters;
     let weight = Mat::from_fn(d_out, d_in, |r, c| {
@@ -497,7 +535,62 @@ pub fn solve(
             0.0
         }
     });
+    ph.lap("output");
+    info.phases = ph.done;
     Ok(Pruned { weight, info })
+}
+
+/// Keep the best state: every move and refit lowers `f` exactly (per row,
+/// or in total for per-layer scope, where a donor row rises), so an increase
+/// can only be rounding; restore the rows it affects from the copy taken
+/// before. Returns the restored rows.
+fn restore_worse(
+    prob: &Problem<'_>,
+    state: &mut State,
+    prev_w: &[f64],
+    prev_keep: &[bool],
+    prev_f: &[f64],
+    layer: bool,
+) -> Vec<usize> {
+    let (d_out, d_in) = (prob.d_out, prob.d_in);
+    let restore: Vec<usize> = if layer {
+        let (now, before) = (state.total(), prev_f.iter().sum::<f64>());
+        debug_assert!(
+            now <= before + 1e-9 * prob.dense.iter().sum::<f64>(),
+            "objective rose from {before} to {now}"
+        );
+        if now > before {
+            (0..d_out).collect()
+        } else {
+            Vec::new()
+        }
+    } else {
+        (0..d_out)
+            .filter(|&r| {
+                debug_assert!(
+                    state.f[r] <= prev_f[r] + 1e-9 * prob.dense[r],
+                    "row {r}: objective rose from {} to {}",
+                    prev_f[r],
+                    state.f[r]
+                );
+                state.f[r] > prev_f[r]
+            })
+            .collect()
+    };
+    for &r in &restore {
+        let rg = r * d_in..(r + 1) * d_in;
+        state.w_hat[rg.clone()].copy_from_slice(&prev_w[rg.clone()]);
+        state.keep[rg.clone()].copy_from_slice(&prev_keep[rg.clone()]);
+        state.f[r] = refit::gradient_row(
+            prob.a,
+            &prob.w[rg.clone()],
+            &prob.b[rg.clone()],
+            &state.w_hat[rg.clone()],
+            &state.keep[rg.clone()],
+            &mut state.g[rg],
+        );
+    }
+    restore
 }
 
 /// Per-row mutable views of the state.
@@ -556,7 +649,15 @@ fn sweep_rows(
             Pattern::Unstructured { .. } => {
                 let mut avail = vec![0.0; rows.len() * d_in];
                 let mut cands: Vec<Vec<Cand>> = vec![Vec::new(); rows.len()];
-                swap::score_block(prob.a, &prob.inv_diag, &rows, &row_tol, &mut avail, &mut cands);
+                swap::score_block(
+                    prob.a,
+                    prob.a32.as_ref(),
+                    &prob.inv_diag,
+                    &rows,
+                    &row_tol,
+                    &mut avail,
+                    &mut cands,
+                );
                 for (bi, (row, &i)) in rows.iter_mut().zip(&ids).enumerate() {
                     let av = &mut avail[bi * d_in..(bi + 1) * d_in];
                     sw[i] = swap::apply_row(
@@ -1058,17 +1159,29 @@ mod bench {
             }
             (best, out.unwrap())
         };
-        for (pattern, reps) in [
-            (Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }, 3),
-            (Pattern::Unstructured { sparsity: 0.9, scope: Scope::Layer }, 1),
-            (Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }, 1),
-            (Pattern::NofM { n: 2, m: 4 }, 1),
+        // `LOPPER_BENCH=90,layer,50,24` picks the patterns (default all).
+        let pick = std::env::var("LOPPER_BENCH").unwrap_or_else(|_| "90,layer,50,24".into());
+        for (name, pattern, reps) in [
+            ("90", Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }, 3),
+            ("layer", Pattern::Unstructured { sparsity: 0.9, scope: Scope::Layer }, 1),
+            ("50", Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }, 1),
+            ("24", Pattern::NofM { n: 2, m: 4 }, 1),
         ] {
+            if !pick.split(',').any(|p| p == name) {
+                continue;
+            }
             let mut params = SolveParams { pattern, ridge_alpha: 0.01, ..SolveParams::default() };
             let (t_obs, ob) = timed(&params, reps);
             let e_obs = relative_error(w.as_ref(), ob.weight.as_ref(), h.as_ref(), par);
             params.method = Method::L0;
             params.l0.trace = true;
+            let env = |k: &str| std::env::var(k).ok().and_then(|v| v.parse::<f64>().ok());
+            if let Some(v) = env("LOPPER_CHOL") {
+                params.l0.chol_max = Some(v as usize);
+            }
+            if let Some(v) = env("LOPPER_CG_TOL") {
+                params.l0.cg_tol = v;
+            }
             let (t_l0, l0) = timed(&params, reps);
             let e_l0 = relative_error(w.as_ref(), l0.weight.as_ref(), h.as_ref(), par);
             let _ = &a;
@@ -1082,6 +1195,65 @@ mod bench {
                 l0.info.refit_iterations
             );
             println!("  trace {:?}", l0.info.trace);
+            let phases: Vec<String> =
+                l0.info.phases.iter().map(|(n, t)| format!("{n} {t:.2}s")).collect();
+            println!("  phases: {}", phases.join(", "));
+        }
+    }
+}
+#[cfg(test)]
+mod micro {
+    use super::*;
+    #[test]
+    #[ignore]
+    fn micro_mm() {
+        let d = 1536;
+        let a = Mat::<f64>::from_fn(d, d, |i, j| ((i * 7 + j * 3) % 11) as f64);
+        let p = Mat::<f64>::from_fn(d, d, |i, j| ((i * 5 + j * 3) % 13) as f64);
+        let a32 = Mat::<f32>::from_fn(d, d, |i, j| a[(i, j)] as f32);
+        let p32 = Mat::<f32>::from_fn(d, d, |i, j| p[(i, j)] as f32);
+        for _ in 0..3 {
+            let mut q = Mat::<f64>::zeros(d, d);
+            let t = Instant::now();
+            matmul(q.as_mut(), Accum::Replace, p.as_ref(), a.as_ref(), 1.0, Par::rayon(0));
+            let t64 = t.elapsed().as_secs_f64();
+            let mut q32 = Mat::<f32>::zeros(d, d);
+            let t = Instant::now();
+            matmul(q32.as_mut(), Accum::Replace, p32.as_ref(), a32.as_ref(), 1.0, Par::rayon(0));
+            let t32 = t.elapsed().as_secs_f64();
+            let mut rm = vec![0.0; d * d];
+            let t = Instant::now();
+            matmul(
+                MatMut::from_row_major_slice_mut(&mut rm, d, d),
+                Accum::Replace,
+                p.as_ref(),
+                a.as_ref(),
+                1.0,
+                Par::rayon(0),
+            );
+            let trm = t.elapsed().as_secs_f64();
+            let prm = vec![1.0; d * d];
+            let t = Instant::now();
+            matmul(
+                MatMut::from_column_major_slice_mut(&mut rm, d, d),
+                Accum::Replace,
+                a.as_ref(),
+                MatRef::from_column_major_slice(&prm, d, d),
+                1.0,
+                Par::rayon(0),
+            );
+            let tt = t.elapsed().as_secs_f64();
+            let t = Instant::now();
+            matmul(
+                MatMut::from_row_major_slice_mut(&mut rm, d, d),
+                Accum::Replace,
+                MatRef::from_row_major_slice(&prm, d, d),
+                a.as_ref(),
+                1.0,
+                Par::rayon(0),
+            );
+            let trr = t.elapsed().as_secs_f64();
+            println!("f64 {t64:.3}s f32 {t32:.3}s f64 rowmajor-out {trm:.3}s transposed {tt:.3}s rm-rm {trr:.3}");
         }
     }
 }
