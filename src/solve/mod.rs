@@ -111,7 +111,7 @@ pub struct L0Params {
     pub cg_max_iter: usize,
     /// Iteration cap of the CG refits of the starts and between sweeps
     /// (warm-started, so each lowers `f` without reaching `cg_tol`; the
-    /// swaps price exactly from whatever point they leave). Default 6.
+    /// swaps price exactly from whatever point they leave). Default 3.
     pub cg_sweep_iter: usize,
     /// A move is accepted when it lowers the row objective by more than
     /// `swap_tol · wᵀAw` (the objective of pruning the whole row). Default
@@ -129,7 +129,7 @@ impl L0Params {
     /// factorisation against the `cg_sweep_iter` CG iterations of
     /// `2·d_in²` each (one row of the batched product `P A`) that a refit
     /// between sweeps runs, i.e. `k ≤ cbrt(6 · cg_sweep_iter · d_in²)`
-    /// (≈ 440 for `d_in = 1536` and the default 6 iterations).
+    /// (≈ 350 for `d_in = 1536` and the default 3 iterations).
     pub fn chol_limit(&self, d_in: usize) -> usize {
         self.chol_max.unwrap_or_else(|| {
             (6.0 * self.cg_sweep_iter.max(1) as f64 * (d_in as f64).powi(2)).cbrt() as usize
@@ -146,7 +146,7 @@ impl Default for L0Params {
             chol_max: None,
             cg_tol: 1e-6,
             cg_max_iter: 500,
-            cg_sweep_iter: 6,
+            cg_sweep_iter: 3,
             swap_tol: 1e-12,
             exact_max_k: 64,
         }
