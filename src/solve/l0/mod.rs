@@ -247,7 +247,11 @@ fn refit_rows(
         return Err(e);
     }
     if by_cg.iter().any(|&r| r) {
-        Ok(refit::pcg(prob, state, &by_cg, params.l0.cg_tol, max_iter, par))
+        // The capped refits run their products in f32; the final one in f64
+        // (an f32 pass to 1e-4 first saved nothing: CG restarted in f64
+        // needed as many iterations from there to 1e-6).
+        let single = max_iter < params.l0.cg_max_iter;
+        Ok(refit::pcg(prob, state, &by_cg, params.l0.cg_tol, max_iter, single, par))
     } else {
         Ok(0)
     }

@@ -190,7 +190,10 @@ pub(crate) fn gradient_rows(prob: &Problem<'_>, state: &mut State, rows: &[bool]
 /// Batched Jacobi-preconditioned CG on all rows with `rows[r]` set, warm
 /// started from `state.w_hat` (which must be zero off the support and have a
 /// consistent `state.g`). Returns the iterations run. Rows not flagged are
-/// left untouched.
+/// left untouched. With `single`, the products `P A` run in f32 (with `A`
+/// rounded): the step lengths and `g` then carry f32 rounding, so this is
+/// for the capped refits between sweeps only; `g` and `f` are recomputed in
+/// f64 at the end either way, so the state stays exact for the swaps.
 ///
 /// Search directions are stored only for rows still iterating (compacted as
 /// rows converge), so the product `Q = P A` shrinks with the active set.
@@ -200,6 +203,7 @@ pub(crate) fn pcg(
     rows: &[bool],
     tol: f64,
     max_iter: usize,
+    single: bool,
     par: Par,
 ) -> usize {
     let t0 = std::time::Instant::now();
@@ -233,18 +237,40 @@ pub(crate) fn pcg(
         *rz = s;
     }
     let mut q = vec![0.0; act.len() * d_in];
+    let (mut p32, mut q32) = if single {
+        (vec![0.0f32; act.len() * d_in], vec![0.0f32; act.len() * d_in])
+    } else {
+        (Vec::new(), Vec::new())
+    };
     let mut iters = 0;
     while iters < max_iter && !act.is_empty() {
         iters += 1;
         let na = act.len();
-        matmul(
-            view_mut(&mut q[..na * d_in], na, d_in),
-            Accum::Replace,
-            view(&p[..na * d_in], na, d_in),
-            prob.a,
-            1.0,
-            par,
-        );
+        if single {
+            for (x, &y) in p32[..na * d_in].iter_mut().zip(&p[..na * d_in]) {
+                *x = y as f32;
+            }
+            matmul(
+                MatMut::from_row_major_slice_mut(&mut q32[..na * d_in], na, d_in),
+                Accum::Replace,
+                MatRef::from_row_major_slice(&p32[..na * d_in], na, d_in),
+                prob.a32.as_ref(),
+                1.0f32,
+                par,
+            );
+            for (x, &y) in q[..na * d_in].iter_mut().zip(&q32[..na * d_in]) {
+                *x = y as f64;
+            }
+        } else {
+            matmul(
+                view_mut(&mut q[..na * d_in], na, d_in),
+                Accum::Replace,
+                view(&p[..na * d_in], na, d_in),
+                prob.a,
+                1.0,
+                par,
+            );
+        }
         let mut next = 0;
         for slot in 0..na {
             let (r, thresh, rz) = act[slot];
@@ -357,7 +383,7 @@ mod tests {
                 )
                 .unwrap();
             }
-            pcg(&prob, &mut cg, &[true; 3], 1e-13, 10 * d, Par::Seq);
+            pcg(&prob, &mut cg, &[true; 3], 1e-13, 10 * d, false, Par::Seq);
             for r in 0..3 {
                 let rg = r * d..(r + 1) * d;
                 let want = lstsq_reference(&x, lambda, &prob.w[rg.clone()], &keep[rg.clone()]);
