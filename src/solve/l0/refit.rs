@@ -13,8 +13,8 @@
 //!
 //! - [`cholesky_row`]: gather `A_SS`, factor it (faer `llt`), solve. Cost
 //!   `k³/3 + k·d_in` per row (the second term rebuilds `g = A_{:,S} ŵ_S − b`
-//!   exactly, so `g` carries no accumulated update error). Used when every
-//!   row keeps at most [`crate::solve::L0Params::chol_limit`] weights.
+//!   exactly, so `g` carries no accumulated update error). Used for the rows
+//!   keeping at most [`crate::solve::L0Params::chol_limit`] weights.
 //! - [`pcg`]: preconditioned conjugate gradients on all rows at once. One
 //!   iteration is one dense product `Q = P A` of the masked search directions
 //!   (`d_out x d_in` times `d_in x d_in`, faer matmul), a Jacobi
@@ -22,8 +22,9 @@
 //!   current `ŵ`. A row stops when `‖g_S‖ ≤ tol · ‖b_S‖`; its direction is
 //!   then zeroed so it costs nothing further. CG with exact line search
 //!   decreases `f` at every step, so a refit never raises the objective.
-//!   After the last iteration `G = Ŵ A − B` is recomputed with one product so
-//!   the recursively updated gradient does not drift.
+//!   After the last iteration `G = Ŵ A − B` of the refit rows is recomputed
+//!   in f64 with one product so the recursively updated gradient does not
+//!   drift. Capped refits (between sweeps) may run the products in f32.
 //!
 //! All accumulation is in f64: the Gram matrix, the products and the dot
 //! products that give step lengths and objectives.
@@ -206,7 +207,6 @@ pub(crate) fn pcg(
     single: bool,
     par: Par,
 ) -> usize {
-    let t0 = std::time::Instant::now();
     let (d_out, d_in) = (prob.d_out, prob.d_in);
     let inv = &prob.inv_diag;
     let masked_sq = |r: usize, x: &[f64], keep: &[bool]| -> f64 {
@@ -309,13 +309,6 @@ pub(crate) fn pcg(
         act.truncate(next);
     }
     gradient_rows(prob, state, rows, par);
-    if std::env::var("LOPPER_DBG").is_ok() {
-        eprintln!(
-            "pcg: {} rows, {iters} iters, {:.2}s, tol {tol:e}",
-            rows.iter().filter(|&&r| r).count(),
-            t0.elapsed().as_secs_f64()
-        );
-    }
     iters
 }
 

@@ -220,8 +220,6 @@ pub(crate) fn score_block(
     }
 }
 
-pub(crate) static RESCANS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
-pub(crate) static CANDS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
 /// Apply the candidates of one row in order of `Δ`, each re-evaluated
 /// exactly with the current `g`. `avail` is this row's slice from
 /// [`score_block`]. Returns (swaps, total Δ).
@@ -233,7 +231,6 @@ pub(crate) fn apply_row(
     tol: f64,
     avail: &mut [f64],
 ) -> (usize, f64) {
-    CANDS.fetch_add(cands.len(), std::sync::atomic::Ordering::Relaxed);
     cands.sort_by(|p, q| p.delta.total_cmp(&q.delta).then(p.out.cmp(&q.out)));
     let (mut swaps, mut total) = (0, 0.0);
     for c in cands.iter() {
@@ -253,7 +250,6 @@ pub(crate) fn apply_row(
             delta = exact(j, row.g);
         }
         if delta.is_nan() || delta >= -tol {
-            RESCANS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
             let (v, jj) = best_partner(wi, ai, row.g, avail);
             if jj == usize::MAX {
                 continue;
@@ -325,7 +321,6 @@ pub(crate) fn apply_nm_row(
         .filter_map(|q| best_group_pair(a, inv_diag, row, q * m, m))
         .filter(|c| c.delta < -tol)
         .collect();
-    CANDS.fetch_add(cands.len(), std::sync::atomic::Ordering::Relaxed);
     cands.sort_by(|p, q| p.delta.total_cmp(&q.delta).then(p.out.cmp(&q.out)));
     let (mut swaps, mut total) = (0, 0.0);
     for c in cands {
