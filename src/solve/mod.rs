@@ -99,15 +99,20 @@ pub struct L0Params {
     /// Record the objective after every sweep in [`SolveInfo::trace`].
     pub trace: bool,
     /// Largest support refit by a dense per-row Cholesky solve of `A_SS`;
-    /// when some row keeps more, all rows are refit together by batched
-    /// conjugate gradients. `None` (default): see [`L0Params::chol_limit`].
+    /// rows keeping more are refit together by batched conjugate gradients.
+    /// `None` (default): see [`L0Params::chol_limit`].
     pub chol_max: Option<usize>,
     /// Relative residual `‖g_S‖ / ‖(A w)_S‖` at which a CG refit of a row
     /// stops. Default `1e-6`: the objective error left is quadratic in it,
     /// and swap prices use the exact gradient of whatever the refit returns.
+    /// The returned weights of CG rows are refit to this tolerance.
     pub cg_tol: f64,
-    /// Iteration cap of one CG refit. Default 500.
+    /// Iteration cap of the final CG refit. Default 500.
     pub cg_max_iter: usize,
+    /// Iteration cap of the CG refits of the starts and between sweeps
+    /// (warm-started, so each lowers `f` without reaching `cg_tol`; the
+    /// swaps price exactly from whatever point they leave). Default 3.
+    pub cg_sweep_iter: usize,
     /// A move is accepted when it lowers the row objective by more than
     /// `swap_tol · wᵀAw` (the objective of pruning the whole row). Default
     /// `1e-12`.
@@ -120,12 +125,15 @@ pub struct L0Params {
 
 impl L0Params {
     /// The support size up to which refits use per-row Cholesky. The
-    /// automatic limit compares costs per row: `k³/3` for the factorisation
-    /// against about 40 CG iterations of `2·d_in²` each (one row of the
-    /// batched product `P A`), i.e. `k ≤ cbrt(240 · d_in²)` (≈ 830 for
-    /// `d_in = 1536`, ≈ 3070 for `d_in = 11008`).
+    /// automatic limit compares costs per row and refit: `k³/3` for the
+    /// factorisation against the `cg_sweep_iter` CG iterations of
+    /// `2·d_in²` each (one row of the batched product `P A`) that a refit
+    /// between sweeps runs, i.e. `k ≤ cbrt(6 · cg_sweep_iter · d_in²)`
+    /// (≈ 350 for `d_in = 1536` and the default 3 iterations).
     pub fn chol_limit(&self, d_in: usize) -> usize {
-        self.chol_max.unwrap_or_else(|| (240.0 * (d_in as f64).powi(2)).cbrt() as usize)
+        self.chol_max.unwrap_or_else(|| {
+            (6.0 * self.cg_sweep_iter.max(1) as f64 * (d_in as f64).powi(2)).cbrt() as usize
+        })
     }
 }
 
@@ -138,6 +146,7 @@ impl Default for L0Params {
             chol_max: None,
             cg_tol: 1e-6,
             cg_max_iter: 500,
+            cg_sweep_iter: 3,
             swap_tol: 1e-12,
             exact_max_k: 64,
         }
@@ -193,6 +202,9 @@ pub struct SolveInfo {
     pub refit_iterations: usize,
     /// Objective after every sweep (when tracing), starting with the initial one.
     pub trace: Vec<f64>,
+    /// Wall-clock seconds per phase of the local search, in order of first
+    /// use (empty for the one-shot methods).
+    pub phases: Vec<(&'static str, f64)>,
 }
 
 /// A numerical failure, carrying its diagnostic.

@@ -29,42 +29,67 @@
 //! price several swaps at once. These cost `2 d_in k²` per row, so they run
 //! only when the cheap swaps stall and only for `k ≤ exact_max_k`.
 //!
+//! **Refits, exact and capped.** A row keeping at most
+//! [`crate::solve::L0Params::chol_limit`] weights is always refit exactly
+//! (per-row Cholesky), so it sits at its refit optimum between sweeps. Rows
+//! keeping more are refit together by batched CG warm-started from the
+//! current `ŵ`, capped at `cg_sweep_iter` iterations (products in f32) for
+//! the starts and between sweeps: each refit lowers `f` without reaching the
+//! optimum, and the swap prices stay exact because they use the exact
+//! gradient of the point the refit leaves (recomputed in f64). Those rows
+//! get one final CG refit (f64) to `cg_tol` at the end: **the returned
+//! weights of rows above the Cholesky limit are refit to `cg_tol`**
+//! (relative residual `‖g_S‖ / ‖(A w)_S‖`), not to rounding. The moves
+//! priced with the refit (`exact.rs`) need a refit optimum, so they only run
+//! on rows refit by Cholesky (`k ≤ min(exact_max_k, chol_limit)`).
+//!
 //! **Algorithm** ([`solve`]):
-//! 1. Two starts, both refit exactly: the activation-scaled magnitude mask
-//!    (`|w_ij|·sqrt(A_jj)`, [`crate::solve::baseline::scaled_scores`]) and the
-//!    support of the OBS sweep ([`crate::solve::obs::sweep`]). Per row (per
-//!    row and N:M) or for the whole layer (per-layer scope, whose row budgets
-//!    differ between the starts) the better one is kept; [`SolveInfo::init`]
-//!    says which: `"scaled+refit"`, `"obs+refit"` or `"mixed"`.
+//! 1. Starts: the support of the OBS sweep ([`crate::solve::obs::sweep`]),
+//!    refit warm-started from its weights; then, only if every row of it is
+//!    refit by Cholesky and `max_seconds` is not spent, the activation-scaled
+//!    magnitude mask (`|w_ij|·sqrt(A_jj)`,
+//!    [`crate::solve::baseline::scaled_scores`]), refit. Per row (per row and
+//!    N:M) or for the whole layer (per-layer scope, whose row budgets differ
+//!    between the starts) the better one is kept; [`SolveInfo::init`] says
+//!    which: `"scaled+refit"`, `"obs+refit"` or `"mixed"`. (Large supports
+//!    skip the scaled start: it costs a second refit of the layer and on a
+//!    1536-wide layer at 50% it won 114 of 1536 rows for no change in the
+//!    final error.)
 //! 2. Sweeps: per-layer budget moves between rows (fixed-others prices;
 //!    prices with the refit when those find nothing), then for every row
 //!    still improving a batch of non-interacting swaps; a row where none
 //!    improves tries the best move priced with the refit (a single swap, a
-//!    pair of swaps, or an N:M group re-choice). Then an exact refit of the
-//!    rows that changed. A row with no improving move is a local optimum and
-//!    is left alone (per-layer scope wakes rows touched by a budget move).
-//!    Stops when no row improves or the budget
-//!    ([`crate::solve::L0Params::max_sweeps`], `max_seconds`, checked between
-//!    sweeps) runs out.
-//! 3. Each accepted move has `Δ < −tol` exactly and a refit minimises `f` on
-//!    its support, so the objective never increases; a row that rounding
-//!    made worse is restored from the copy taken before the sweep.
+//!    pair of swaps, or an N:M group re-choice). Then a refit (exact or
+//!    capped, above) of the rows that changed. A row with no improving move
+//!    is a local optimum and is left alone (per-layer scope wakes rows
+//!    touched by a budget move). Stops when no row improves or the budget
+//!    ([`crate::solve::L0Params::max_sweeps`], `max_seconds`, checked after
+//!    the starts and between sweeps) runs out.
+//! 3. The final refit of the CG rows (always run, also when the budget ran
+//!    out: it is what makes the returned weights refit to `cg_tol`).
+//! 4. Each accepted move has `Δ < −tol` exactly and a refit (CG from a warm
+//!    start included) lowers `f` on its support, so the objective never
+//!    increases; a row that rounding made worse is restored from the copy
+//!    taken before the sweep (and before the final refit).
+//!    [`SolveInfo::phases`] records the wall-clock time of each phase.
 //!
 //! Rows are independent (except per-layer budget moves, which are cheap and
 //! sequential), so swaps and per-row refits run over blocks of rows in
-//! parallel with rayon when `par` allows. The swap scoring is
-//! O(k·(d_in − k)) per row per sweep and never inverts `A_SS`.
+//! parallel with rayon when `par` allows, on `n` threads for
+//! `Par::Rayon(n)`. The swap scoring is O(k·(d_in − k)) per row per sweep
+//! and never inverts `A_SS`; its partner search runs in f32 (AVX2 when the
+//! CPU has it) and every chosen pair is priced again in f64.
 //!
-//! Refits use per-row Cholesky up to `k ≤ L0Params::chol_limit(d_in)` (a
-//! cost model: `k³/3` against ~40 CG iterations), batched CG beyond.
-//!
-//! Memory: `A` is borrowed; the solver keeps `W`, `B`, `Ŵ`, `G` and a copy of
-//! `Ŵ` (five `d_out x d_in` f64 matrices, plus a second `Ŵ, G` pair and the
-//! OBS sweep's own buffers while the two starts are built, and at most two
-//! more inside the batched CG refit). Per thread, a Cholesky refit holds one
-//! `k x k` matrix; nothing is `d_in²` per row.
-//! Everything is f64: gradients, dot products and objectives accumulate in
-//! f64, which is what lets `Δ` be trusted down to `tol`.
+//! Memory: `A` is borrowed and copied once to f32 (`d_in²` f32); the solver
+//! keeps `W`, `B`, `Ŵ`, `G` and a copy of `Ŵ` (five `d_out x d_in` f64
+//! matrices, plus a second `Ŵ, G` pair and the OBS sweep's own buffers while
+//! the starts are built, and at most two more f64 and two f32 ones inside
+//! the batched CG refit). Per thread, a Cholesky refit holds one `k x k`
+//! matrix; nothing is `d_in²` per row.
+//! Gradients, dot products and objectives are f64, which is what lets `Δ`
+//! be trusted down to `tol`; only the partner search and the products of
+//! the capped CG refits run in f32, and their results are recomputed in
+//! f64 before any price or objective uses them.
 
 pub(crate) mod exact;
 pub(crate) mod refit;
@@ -104,6 +129,8 @@ pub(crate) struct Problem<'s> {
     pub dense: Vec<f64>,
     pub diag: Vec<f64>,
     pub inv_diag: Vec<f64>,
+    /// `A` rounded to f32, for the partner search of the swap scoring.
+    pub a32: Mat<f32>,
 }
 
 impl<'s> Problem<'s> {
@@ -132,7 +159,8 @@ impl<'s> Problem<'s> {
             .collect();
         let diag: Vec<f64> = (0..d_in).map(|j| a[(j, j)]).collect();
         let inv_diag = diag.iter().map(|&x| 1.0 / x).collect();
-        Problem { a, d_out, d_in, w: wr, b, dense, diag, inv_diag }
+        let a32 = Mat::from_fn(d_in, d_in, |i, j| a[(i, j)] as f32);
+        Problem { a, d_out, d_in, w: wr, b, dense, diag, inv_diag, a32 }
     }
 }
 
@@ -173,56 +201,94 @@ impl State {
     }
 }
 
-/// Run `f` on every item, in parallel when `par` allows.
-fn for_each<T: Send>(items: Vec<T>, par: Par, f: impl Fn(T) + Sync + Send) {
-    match par {
-        Par::Seq => items.into_iter().for_each(f),
-        _ => items.into_par_iter().for_each(f),
+/// Wall-clock time per phase, accumulated.
+#[derive(Default)]
+struct Phases {
+    done: Vec<(&'static str, f64)>,
+    mark: Option<Instant>,
+}
+
+impl Phases {
+    /// Charge the time since the previous call (or the start) to `name`.
+    fn lap(&mut self, name: &'static str) {
+        let now = Instant::now();
+        let dt = self.mark.map_or(0.0, |m| (now - m).as_secs_f64());
+        self.mark = Some(now);
+        match self.done.iter_mut().find(|(n, _)| *n == name) {
+            Some((_, t)) => *t += dt,
+            None => self.done.push((name, dt)),
+        }
     }
 }
 
-/// Whether [`refit_rows`] refits the flagged rows by per-row Cholesky.
-fn uses_cholesky(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> bool {
-    keep.chunks(d_in)
-        .zip(rows)
-        .filter(|(_, &r)| r)
-        .all(|(k, _)| k.iter().filter(|&&x| x).count() <= chol_max)
+/// Run `f` on every item, in parallel when `par` allows: with
+/// `Par::Rayon(n)` on `n` threads (the global rayon pool when it has that
+/// size, else a pool of `n` threads built for the call, which costs far less
+/// than the row work it runs).
+fn for_each<T: Send>(items: Vec<T>, par: Par, f: impl Fn(T) + Sync + Send) {
+    match par {
+        Par::Seq => items.into_iter().for_each(f),
+        Par::Rayon(n) if n.get() == 1 => items.into_iter().for_each(f),
+        Par::Rayon(n) if n.get() == rayon::current_num_threads() => {
+            items.into_par_iter().for_each(f)
+        }
+        Par::Rayon(n) => match rayon::ThreadPoolBuilder::new().num_threads(n.get()).build() {
+            Ok(pool) => pool.install(|| items.into_par_iter().for_each(f)),
+            Err(_) => items.into_par_iter().for_each(f),
+        },
+    }
 }
 
-/// Refit the rows flagged in `rows` exactly; returns CG iterations (0 when
-/// every refit row is small enough for a dense Cholesky solve).
+/// Rows refit by CG (support larger than the Cholesky limit) among `rows`.
+fn cg_rows(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> Vec<bool> {
+    keep.chunks(d_in)
+        .zip(rows)
+        .map(|(k, &r)| r && k.iter().filter(|&&x| x).count() > chol_max)
+        .collect()
+}
+
+/// Refit the rows flagged in `rows`: those keeping at most
+/// [`crate::solve::L0Params::chol_limit`] weights exactly by per-row
+/// Cholesky, the rest by batched CG warm-started from `ŵ`, capped at
+/// `max_iter` iterations (or stopped at `cg_tol`). Returns CG iterations.
 fn refit_rows(
     prob: &Problem<'_>,
     state: &mut State,
     rows: &[bool],
     params: &SolveParams,
+    max_iter: usize,
     par: Par,
 ) -> Result<usize, SolveError> {
     let d_in = prob.d_in;
-    if uses_cholesky(&state.keep, rows, d_in, params.l0.chol_limit(d_in)) {
-        let err = std::sync::Mutex::new(None);
-        let items: Vec<_> = state
-            .w_hat
-            .chunks_mut(d_in)
-            .zip(state.g.chunks_mut(d_in))
-            .zip(state.keep.chunks(d_in))
-            .zip(state.f.iter_mut())
-            .enumerate()
-            .filter(|(r, _)| rows[*r])
-            .collect();
-        for_each(items, par, |(r, (((w_hat, g), keep), f))| {
-            let rg = r * d_in..(r + 1) * d_in;
-            match refit::cholesky_row(prob.a, &prob.w[rg.clone()], &prob.b[rg], w_hat, keep, g) {
-                Ok(v) => *f = v,
-                Err(e) => *err.lock().unwrap() = Some(e),
-            }
-        });
-        match err.into_inner().unwrap() {
-            Some(e) => Err(e),
-            None => Ok(0),
+    let by_cg = cg_rows(&state.keep, rows, d_in, params.l0.chol_limit(d_in));
+    let err = std::sync::Mutex::new(None);
+    let items: Vec<_> = state
+        .w_hat
+        .chunks_mut(d_in)
+        .zip(state.g.chunks_mut(d_in))
+        .zip(state.keep.chunks(d_in))
+        .zip(state.f.iter_mut())
+        .enumerate()
+        .filter(|(r, _)| rows[*r] && !by_cg[*r])
+        .collect();
+    for_each(items, par, |(r, (((w_hat, g), keep), f))| {
+        let rg = r * d_in..(r + 1) * d_in;
+        match refit::cholesky_row(prob.a, &prob.w[rg.clone()], &prob.b[rg], w_hat, keep, g) {
+            Ok(v) => *f = v,
+            Err(e) => *err.lock().unwrap() = Some(e),
         }
+    });
+    if let Some(e) = err.into_inner().unwrap() {
+        return Err(e);
+    }
+    if by_cg.iter().any(|&r| r) {
+        // The capped refits run their products in f32; the final one in f64
+        // (an f32 pass to 1e-4 first saved nothing: CG restarted in f64
+        // needed as many iterations from there to 1e-6).
+        let single = max_iter < params.l0.cg_max_iter;
+        Ok(refit::pcg(prob, state, &by_cg, params.l0.cg_tol, max_iter, single, par))
     } else {
-        Ok(refit::pcg(prob, state, rows, params.l0.cg_tol, params.l0.cg_max_iter, par))
+        Ok(0)
     }
 }
 
@@ -293,58 +359,80 @@ pub fn solve(
     };
     let (d_out, d_in) = (w.nrows(), w.ncols());
     let pattern = params.pattern;
+    let mut ph = Phases { mark: Some(start), ..Phases::default() };
     let prob = Problem::new(w, a, par);
     let all = vec![true; d_out];
 
-    // Start (a): scaled magnitude mask, exact refit.
     let scores = scaled_scores(w, a);
-    // A start refit by Cholesky needs no gradient beforehand; one refit by
-    // CG needs it for the warm start.
+    // A start refit only by Cholesky needs no gradient beforehand; one with
+    // CG rows needs it for the warm start.
+    let chol_max = params.l0.chol_limit(d_in);
     let start_state = |keep: Vec<bool>, from: Option<&[f64]>| {
-        if uses_cholesky(&keep, &all, d_in, params.l0.chol_limit(d_in)) {
-            State::unrefined(&prob, keep, from)
-        } else {
+        if cg_rows(&keep, &all, d_in, chol_max).iter().any(|&r| r) {
             State::from_support(&prob, keep, from, par)
+        } else {
+            State::unrefined(&prob, keep, from)
         }
     };
-    let mut sa = start_state(mask_support(&select(scores.as_ref(), pattern)), None);
-    let mut cg_iters = refit_rows(&prob, &mut sa, &all, params, par)?;
-    // Start (b): OBS sweep support, exact refit warm-started from its weights.
+    let out_of_time = || params.l0.max_seconds.is_some_and(|t| start.elapsed().as_secs_f64() >= t);
+    ph.lap("setup");
+    // Start (b): the OBS sweep's support, refit warm-started from its weights.
     let ob = obs::sweep(w, a, pattern, params.obs_block, par)?;
+    ph.lap("obs sweep");
     let mut keep_b = mask_support(&Mask::nonzeros(ob.weight.as_ref()));
     complete_support(&mut keep_b, &scores, pattern);
-    drop(scores);
     let ob_rm: Vec<f64> = (0..d_out * d_in).map(|i| ob.weight[(i / d_in, i % d_in)]).collect();
     drop(ob);
     let mut sb = start_state(keep_b, Some(&ob_rm));
     drop(ob_rm);
-    cg_iters += refit_rows(&prob, &mut sb, &all, params, par)?;
+    let sweep_iter = params.l0.cg_sweep_iter;
+    let mut cg_iters = refit_rows(&prob, &mut sb, &all, params, sweep_iter, par)?;
+    ph.lap("start obs");
+    // Start (a): the scaled magnitude mask, refit warm-started from `W` on
+    // it. Skipped when the time budget is already spent, and when some row
+    // of the OBS start is refit by CG: large supports, where the OBS start is
+    // clearly better (on the 1536-wide benchmark at 50% the scaled start won
+    // 114 of 1536 rows and the final error was the same without it) and a
+    // second refit of the whole layer costs as much as the OBS sweep.
+    let large = cg_rows(&sb.keep, &all, d_in, chol_max).iter().any(|&r| r);
+    let sa = if out_of_time() || large {
+        None
+    } else {
+        let mut sa = start_state(mask_support(&select(scores.as_ref(), pattern)), None);
+        cg_iters += refit_rows(&prob, &mut sa, &all, params, sweep_iter, par)?;
+        Some(sa)
+    };
+    drop(scores);
+    ph.lap("start scaled");
 
     let layer = matches!(pattern, Pattern::Unstructured { scope: Scope::Layer, .. });
     let mut state;
     let init;
-    if layer {
-        (state, init) =
-            if sb.total() < sa.total() { (sb, "obs+refit") } else { (sa, "scaled+refit") };
-    } else {
-        let mut took_b = 0;
-        for r in 0..d_out {
-            if sb.f[r] < sa.f[r] {
-                let rg = r * d_in..(r + 1) * d_in;
-                sa.w_hat[rg.clone()].copy_from_slice(&sb.w_hat[rg.clone()]);
-                sa.g[rg.clone()].copy_from_slice(&sb.g[rg.clone()]);
-                sa.keep[rg.clone()].copy_from_slice(&sb.keep[rg]);
-                sa.f[r] = sb.f[r];
-                took_b += 1;
-            }
+    match sa {
+        None => (state, init) = (sb, "obs+refit"),
+        Some(sa) if layer => {
+            (state, init) =
+                if sb.total() <= sa.total() { (sb, "obs+refit") } else { (sa, "scaled+refit") };
         }
-        drop(sb);
-        state = sa;
-        init = match took_b {
-            0 => "scaled+refit",
-            t if t == d_out => "obs+refit",
-            _ => "mixed",
-        };
+        Some(sa) => {
+            let mut took_a = 0;
+            for r in 0..d_out {
+                if sa.f[r] < sb.f[r] {
+                    let rg = r * d_in..(r + 1) * d_in;
+                    sb.w_hat[rg.clone()].copy_from_slice(&sa.w_hat[rg.clone()]);
+                    sb.g[rg.clone()].copy_from_slice(&sa.g[rg.clone()]);
+                    sb.keep[rg.clone()].copy_from_slice(&sa.keep[rg]);
+                    sb.f[r] = sa.f[r];
+                    took_a += 1;
+                }
+            }
+            state = sb;
+            init = match took_a {
+                0 => "obs+refit",
+                t if t == d_out => "scaled+refit",
+                _ => "mixed",
+            };
+        }
     }
 
     let mut info = SolveInfo { init: Some(init), ..SolveInfo::default() };
@@ -369,6 +457,7 @@ pub fn solve(
         prev_keep.copy_from_slice(&state.keep);
         prev_f.copy_from_slice(&state.f);
         let mut changed = vec![false; d_out];
+        ph.lap("sweep refits");
 
         // Rows a cheap budget move touched (no exact moves this sweep: not at
         // a refit optimum) and rows an exact budget move flipped (no moves at
@@ -415,6 +504,7 @@ pub fn solve(
                 }
             }
             drop(rows);
+            ph.lap("budget moves");
             info.swaps += moves;
             for r in touched {
                 changed[r] = true;
@@ -434,53 +524,16 @@ pub fn solve(
             }
         }
         info.sweeps += 1;
+        ph.lap("sweep swaps");
         if !changed.iter().any(|&c| c) {
             if params.l0.trace {
                 info.trace.push(state.total());
             }
             break;
         }
-        cg_iters += refit_rows(&prob, &mut state, &changed, params, par)?;
+        cg_iters += refit_rows(&prob, &mut state, &changed, params, sweep_iter, par)?;
 
-        // Keep the best state: every move and refit lowers f exactly (per
-        // row, or in total for per-layer scope, where a donor row rises), so
-        // an increase can only be rounding; restore the rows it affects.
-        let restore: Vec<usize> = if layer {
-            let (now, before) = (state.total(), prev_f.iter().sum::<f64>());
-            debug_assert!(
-                now <= before + 1e-9 * prob.dense.iter().sum::<f64>(),
-                "objective rose from {before} to {now}"
-            );
-            if now > before {
-                (0..d_out).collect()
-            } else {
-                Vec::new()
-            }
-        } else {
-            (0..d_out)
-                .filter(|&r| {
-                    debug_assert!(
-                        state.f[r] <= prev_f[r] + 1e-9 * prob.dense[r],
-                        "row {r}: objective rose from {} to {}",
-                        prev_f[r],
-                        state.f[r]
-                    );
-                    state.f[r] > prev_f[r]
-                })
-                .collect()
-        };
-        for r in restore {
-            let rg = r * d_in..(r + 1) * d_in;
-            state.w_hat[rg.clone()].copy_from_slice(&prev_w[rg.clone()]);
-            state.keep[rg.clone()].copy_from_slice(&prev_keep[rg.clone()]);
-            state.f[r] = refit::gradient_row(
-                a,
-                &prob.w[rg.clone()],
-                &prob.b[rg.clone()],
-                &state.w_hat[rg.clone()],
-                &state.keep[rg.clone()],
-                &mut state.g[rg],
-            );
+        for r in restore_worse(&prob, &mut state, &prev_w, &prev_keep, &prev_f, layer) {
             active[r] = false;
         }
         if params.l0.trace {
@@ -488,6 +541,21 @@ pub fn solve(
         }
     }
 
+    ph.lap("sweep refits");
+
+    // Final refit of the rows refit by capped CG so far, to `cg_tol`.
+    let loose = cg_rows(&state.keep, &all, d_in, chol_max);
+    if loose.iter().any(|&r| r) {
+        prev_w.copy_from_slice(&state.w_hat);
+        prev_keep.copy_from_slice(&state.keep);
+        prev_f.copy_from_slice(&state.f);
+        cg_iters += refit_rows(&prob, &mut state, &loose, params, params.l0.cg_max_iter, par)?;
+        restore_worse(&prob, &mut state, &prev_w, &prev_keep, &prev_f, layer);
+        if let Some(last) = info.trace.last_mut() {
+            *last = last.min(state.total());
+        }
+    }
+    ph.lap("final refit");
     info.objective_final = state.total();
     info.refit_iterations = cg_iters;
     let weight = Mat::from_fn(d_out, d_in, |r, c| {
@@ -497,7 +565,62 @@ pub fn solve(
             0.0
         }
     });
+    ph.lap("output");
+    info.phases = ph.done;
     Ok(Pruned { weight, info })
+}
+
+/// Keep the best state: every move and refit lowers `f` exactly (per row,
+/// or in total for per-layer scope, where a donor row rises), so an increase
+/// can only be rounding; restore the rows it affects from the copy taken
+/// before. Returns the restored rows.
+fn restore_worse(
+    prob: &Problem<'_>,
+    state: &mut State,
+    prev_w: &[f64],
+    prev_keep: &[bool],
+    prev_f: &[f64],
+    layer: bool,
+) -> Vec<usize> {
+    let (d_out, d_in) = (prob.d_out, prob.d_in);
+    let restore: Vec<usize> = if layer {
+        let (now, before) = (state.total(), prev_f.iter().sum::<f64>());
+        debug_assert!(
+            now <= before + 1e-9 * prob.dense.iter().sum::<f64>(),
+            "objective rose from {before} to {now}"
+        );
+        if now > before {
+            (0..d_out).collect()
+        } else {
+            Vec::new()
+        }
+    } else {
+        (0..d_out)
+            .filter(|&r| {
+                debug_assert!(
+                    state.f[r] <= prev_f[r] + 1e-9 * prob.dense[r],
+                    "row {r}: objective rose from {} to {}",
+                    prev_f[r],
+                    state.f[r]
+                );
+                state.f[r] > prev_f[r]
+            })
+            .collect()
+    };
+    for &r in &restore {
+        let rg = r * d_in..(r + 1) * d_in;
+        state.w_hat[rg.clone()].copy_from_slice(&prev_w[rg.clone()]);
+        state.keep[rg.clone()].copy_from_slice(&prev_keep[rg.clone()]);
+        state.f[r] = refit::gradient_row(
+            prob.a,
+            &prob.w[rg.clone()],
+            &prob.b[rg.clone()],
+            &state.w_hat[rg.clone()],
+            &state.keep[rg.clone()],
+            &mut state.g[rg],
+        );
+    }
+    restore
 }
 
 /// Per-row mutable views of the state.
@@ -556,7 +679,15 @@ fn sweep_rows(
             Pattern::Unstructured { .. } => {
                 let mut avail = vec![0.0; rows.len() * d_in];
                 let mut cands: Vec<Vec<Cand>> = vec![Vec::new(); rows.len()];
-                swap::score_block(prob.a, &prob.inv_diag, &rows, &row_tol, &mut avail, &mut cands);
+                swap::score_block(
+                    prob.a,
+                    prob.a32.as_ref(),
+                    &prob.inv_diag,
+                    &rows,
+                    &row_tol,
+                    &mut avail,
+                    &mut cands,
+                );
                 for (bi, (row, &i)) in rows.iter_mut().zip(&ids).enumerate() {
                     let av = &mut avail[bi * d_in..(bi + 1) * d_in];
                     sw[i] = swap::apply_row(
@@ -809,9 +940,13 @@ pub(crate) mod tests {
             Pattern::NofM { n: 1, m: 8 },
         ];
         for pattern in patterns {
-            for (chol_max, par) in
-                [(256, Par::Seq), (0, Par::Seq), (256, Par::rayon(2)), (0, Par::rayon(2))]
-            {
+            for (chol_max, par) in [
+                (256, Par::Seq),
+                (0, Par::Seq),
+                (256, Par::rayon(2)),
+                (0, Par::rayon(2)),
+                (256, Par::rayon(3)),
+            ] {
                 let mut params = l0_params(pattern);
                 params.l0.trace = true;
                 params.l0.chol_max = Some(chol_max);
@@ -821,6 +956,31 @@ pub(crate) mod tests {
                 assert!(got.info.init.is_some());
                 if chol_max == 0 {
                     assert!(got.info.refit_iterations > 0, "{pattern:?}: CG path not taken");
+                    // The final refit leaves every row within cg_tol.
+                    let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+                    let d = w.ncols();
+                    for r in 0..w.nrows() {
+                        let wr: Vec<f64> = (0..d).map(|c| got.weight[(r, c)]).collect();
+                        let keep: Vec<bool> = wr.iter().map(|&x| x != 0.0).collect();
+                        let rg = r * d..(r + 1) * d;
+                        let mut g = vec![0.0; d];
+                        refit::gradient_row(
+                            a.as_ref(),
+                            &prob.w[rg.clone()],
+                            &prob.b[rg.clone()],
+                            &wr,
+                            &keep,
+                            &mut g,
+                        );
+                        let sq = |x: &[f64]| -> f64 {
+                            x.iter().zip(&keep).filter(|(_, &k)| k).map(|(v, _)| v * v).sum()
+                        };
+                        let (res, rhs) = (sq(&g).sqrt(), sq(&prob.b[rg]).sqrt());
+                        assert!(
+                            res <= 1.01 * params.l0.cg_tol * rhs,
+                            "{pattern:?} row {r}: residual {res:.3e} vs {rhs:.3e}"
+                        );
+                    }
                 }
                 // Not worse than either start: the OBS sweep, refit or not.
                 let ob =
@@ -1010,7 +1170,9 @@ mod bench {
     /// activations: 8 shared latent factors, a moving-average correlation
     /// between neighbouring inputs, log-normal channel scales and 1% outlier
     /// channels 10x louder. Run with
-    /// `cargo test --release --lib bench_1536 -- --ignored --nocapture`.
+    /// `cargo test --release --lib bench_1536 -- --ignored --nocapture`;
+    /// `LOPPER_BENCH` picks patterns, `LOPPER_CHOL`, `LOPPER_CG_TOL` and
+    /// `LOPPER_SWEEP_ITER` override `chol_max`, `cg_tol`, `cg_sweep_iter`.
     #[test]
     #[ignore]
     fn bench_1536() {
@@ -1058,17 +1220,32 @@ mod bench {
             }
             (best, out.unwrap())
         };
-        for (pattern, reps) in [
-            (Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }, 3),
-            (Pattern::Unstructured { sparsity: 0.9, scope: Scope::Layer }, 1),
-            (Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }, 1),
-            (Pattern::NofM { n: 2, m: 4 }, 1),
+        // `LOPPER_BENCH=90,layer,50,24` picks the patterns (default all).
+        let pick = std::env::var("LOPPER_BENCH").unwrap_or_else(|_| "90,layer,50,24".into());
+        for (name, pattern, reps) in [
+            ("90", Pattern::Unstructured { sparsity: 0.9, scope: Scope::Row }, 3),
+            ("layer", Pattern::Unstructured { sparsity: 0.9, scope: Scope::Layer }, 1),
+            ("50", Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row }, 1),
+            ("24", Pattern::NofM { n: 2, m: 4 }, 1),
         ] {
+            if !pick.split(',').any(|p| p == name) {
+                continue;
+            }
             let mut params = SolveParams { pattern, ridge_alpha: 0.01, ..SolveParams::default() };
             let (t_obs, ob) = timed(&params, reps);
             let e_obs = relative_error(w.as_ref(), ob.weight.as_ref(), h.as_ref(), par);
             params.method = Method::L0;
             params.l0.trace = true;
+            let env = |k: &str| std::env::var(k).ok().and_then(|v| v.parse::<f64>().ok());
+            if let Some(v) = env("LOPPER_CHOL") {
+                params.l0.chol_max = Some(v as usize);
+            }
+            if let Some(v) = env("LOPPER_SWEEP_ITER") {
+                params.l0.cg_sweep_iter = v as usize;
+            }
+            if let Some(v) = env("LOPPER_CG_TOL") {
+                params.l0.cg_tol = v;
+            }
             let (t_l0, l0) = timed(&params, reps);
             let e_l0 = relative_error(w.as_ref(), l0.weight.as_ref(), h.as_ref(), par);
             let _ = &a;
@@ -1082,6 +1259,9 @@ mod bench {
                 l0.info.refit_iterations
             );
             println!("  trace {:?}", l0.info.trace);
+            let phases: Vec<String> =
+                l0.info.phases.iter().map(|(n, t)| format!("{n} {t:.2}s")).collect();
+            println!("  phases: {}", phases.join(", "));
         }
     }
 }

@@ -13,8 +13,8 @@
 //!
 //! - [`cholesky_row`]: gather `A_SS`, factor it (faer `llt`), solve. Cost
 //!   `k³/3 + k·d_in` per row (the second term rebuilds `g = A_{:,S} ŵ_S − b`
-//!   exactly, so `g` carries no accumulated update error). Used when every
-//!   row keeps at most [`crate::solve::L0Params::chol_limit`] weights.
+//!   exactly, so `g` carries no accumulated update error). Used for the rows
+//!   keeping at most [`crate::solve::L0Params::chol_limit`] weights.
 //! - [`pcg`]: preconditioned conjugate gradients on all rows at once. One
 //!   iteration is one dense product `Q = P A` of the masked search directions
 //!   (`d_out x d_in` times `d_in x d_in`, faer matmul), a Jacobi
@@ -22,8 +22,9 @@
 //!   current `ŵ`. A row stops when `‖g_S‖ ≤ tol · ‖b_S‖`; its direction is
 //!   then zeroed so it costs nothing further. CG with exact line search
 //!   decreases `f` at every step, so a refit never raises the objective.
-//!   After the last iteration `G = Ŵ A − B` is recomputed with one product so
-//!   the recursively updated gradient does not drift.
+//!   After the last iteration `G = Ŵ A − B` of the refit rows is recomputed
+//!   in f64 with one product so the recursively updated gradient does not
+//!   drift. Capped refits (between sweeps) may run the products in f32.
 //!
 //! All accumulation is in f64: the Gram matrix, the products and the dot
 //! products that give step lengths and objectives.
@@ -159,9 +160,41 @@ pub(crate) fn gradient_all(prob: &Problem<'_>, state: &mut State, par: Par) {
     }
 }
 
+/// As [`gradient_all`] for the rows flagged in `rows` only (one product of
+/// those rows with `A`).
+pub(crate) fn gradient_rows(prob: &Problem<'_>, state: &mut State, rows: &[bool], par: Par) {
+    let (d_out, d_in) = (prob.d_out, prob.d_in);
+    let ids: Vec<usize> = (0..d_out).filter(|&r| rows[r]).collect();
+    if ids.len() == d_out {
+        return gradient_all(prob, state, par);
+    }
+    let n = ids.len();
+    let mut x = vec![0.0; n * d_in];
+    for (slot, &r) in ids.iter().enumerate() {
+        x[slot * d_in..(slot + 1) * d_in].copy_from_slice(&state.w_hat[r * d_in..(r + 1) * d_in]);
+    }
+    let mut q = vec![0.0; n * d_in];
+    matmul(view_mut(&mut q, n, d_in), Accum::Replace, view(&x, n, d_in), prob.a, 1.0, par);
+    for (slot, &r) in ids.iter().enumerate() {
+        let rg = r * d_in..(r + 1) * d_in;
+        for ((gj, qj), bj) in state.g[rg.clone()]
+            .iter_mut()
+            .zip(&q[slot * d_in..(slot + 1) * d_in])
+            .zip(&prob.b[rg.clone()])
+        {
+            *gj = qj - bj;
+        }
+        state.f[r] = row_objective(&prob.w[rg.clone()], &state.w_hat[rg.clone()], &state.g[rg]);
+    }
+}
+
 /// Batched Jacobi-preconditioned CG on all rows with `rows[r]` set, warm
 /// started from `state.w_hat` (which must be zero off the support and have a
-/// consistent `state.g`). Returns the iterations run.
+/// consistent `state.g`). Returns the iterations run. Rows not flagged are
+/// left untouched. With `single`, the products `P A` run in f32 (with `A`
+/// rounded): the step lengths and `g` then carry f32 rounding, so this is
+/// for the capped refits between sweeps only; `g` and `f` are recomputed in
+/// f64 at the end either way, so the state stays exact for the swaps.
 ///
 /// Search directions are stored only for rows still iterating (compacted as
 /// rows converge), so the product `Q = P A` shrinks with the active set.
@@ -171,6 +204,7 @@ pub(crate) fn pcg(
     rows: &[bool],
     tol: f64,
     max_iter: usize,
+    single: bool,
     par: Par,
 ) -> usize {
     let (d_out, d_in) = (prob.d_out, prob.d_in);
@@ -203,18 +237,40 @@ pub(crate) fn pcg(
         *rz = s;
     }
     let mut q = vec![0.0; act.len() * d_in];
+    let (mut p32, mut q32) = if single {
+        (vec![0.0f32; act.len() * d_in], vec![0.0f32; act.len() * d_in])
+    } else {
+        (Vec::new(), Vec::new())
+    };
     let mut iters = 0;
     while iters < max_iter && !act.is_empty() {
         iters += 1;
         let na = act.len();
-        matmul(
-            view_mut(&mut q[..na * d_in], na, d_in),
-            Accum::Replace,
-            view(&p[..na * d_in], na, d_in),
-            prob.a,
-            1.0,
-            par,
-        );
+        if single {
+            for (x, &y) in p32[..na * d_in].iter_mut().zip(&p[..na * d_in]) {
+                *x = y as f32;
+            }
+            matmul(
+                MatMut::from_row_major_slice_mut(&mut q32[..na * d_in], na, d_in),
+                Accum::Replace,
+                MatRef::from_row_major_slice(&p32[..na * d_in], na, d_in),
+                prob.a32.as_ref(),
+                1.0f32,
+                par,
+            );
+            for (x, &y) in q[..na * d_in].iter_mut().zip(&q32[..na * d_in]) {
+                *x = y as f64;
+            }
+        } else {
+            matmul(
+                view_mut(&mut q[..na * d_in], na, d_in),
+                Accum::Replace,
+                view(&p[..na * d_in], na, d_in),
+                prob.a,
+                1.0,
+                par,
+            );
+        }
         let mut next = 0;
         for slot in 0..na {
             let (r, thresh, rz) = act[slot];
@@ -252,7 +308,7 @@ pub(crate) fn pcg(
         }
         act.truncate(next);
     }
-    gradient_all(prob, state, par);
+    gradient_rows(prob, state, rows, par);
     iters
 }
 
@@ -320,7 +376,7 @@ mod tests {
                 )
                 .unwrap();
             }
-            pcg(&prob, &mut cg, &[true; 3], 1e-13, 10 * d, Par::Seq);
+            pcg(&prob, &mut cg, &[true; 3], 1e-13, 10 * d, false, Par::Seq);
             for r in 0..3 {
                 let rg = r * d..(r + 1) * d;
                 let want = lstsq_reference(&x, lambda, &prob.w[rg.clone()], &keep[rg.clone()]);

@@ -47,6 +47,24 @@ pub(crate) struct Cand {
 /// vectorises; ties go to the lower index.
 #[inline]
 fn best_partner(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") {
+        // SAFETY: the CPU supports AVX2, checked just above.
+        return unsafe { best_partner_avx2(x, a, g, m) };
+    }
+    best_partner_body(x, a, g, m)
+}
+
+/// [`best_partner`] compiled for AVX2 (same operations, wider registers;
+/// no FMA contraction, so the results are identical).
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn best_partner_avx2(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
+    best_partner_body(x, a, g, m)
+}
+
+#[inline(always)]
+fn best_partner_body(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
     const L: usize = 8;
     let n = g.len().min(a.len()).min(m.len());
     let (a, g, m) = (&a[..n], &g[..n], &m[..n]);
@@ -82,6 +100,62 @@ fn best_partner(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
     (bv, bi)
 }
 
+/// [`best_partner`] in f32 (twice the lanes): only picks the index; the
+/// caller prices the chosen pair exactly in f64.
+#[inline]
+fn best_partner_f32(x: f32, a: &[f32], g: &[f32], m: &[f32]) -> usize {
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") {
+        // SAFETY: the CPU supports AVX2, checked just above.
+        return unsafe { best_partner_f32_avx2(x, a, g, m) };
+    }
+    best_partner_f32_body(x, a, g, m)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+fn best_partner_f32_avx2(x: f32, a: &[f32], g: &[f32], m: &[f32]) -> usize {
+    best_partner_f32_body(x, a, g, m)
+}
+
+#[inline(always)]
+fn best_partner_f32_body(x: f32, a: &[f32], g: &[f32], m: &[f32]) -> usize {
+    const L: usize = 16;
+    let n = g.len().min(a.len()).min(m.len());
+    let (a, g, m) = (&a[..n], &g[..n], &m[..n]);
+    let mut best = [0.0f32; L];
+    let mut idx = [u32::MAX; L];
+    let chunks = n / L;
+    for c in 0..chunks {
+        let base = c * L;
+        let (ac, gc, mc) = (&a[base..base + L], &g[base..base + L], &m[base..base + L]);
+        for l in 0..L {
+            let t = gc[l] - x * ac[l];
+            let v = t * t * mc[l];
+            let gt = v > best[l];
+            best[l] = if gt { v } else { best[l] };
+            idx[l] = if gt { (base + l) as u32 } else { idx[l] };
+        }
+    }
+    let (mut bv, mut bi) = (0.0, usize::MAX);
+    for l in 0..L {
+        let i = idx[l] as usize;
+        if idx[l] != u32::MAX && (best[l] > bv || (best[l] == bv && best[l] > 0.0 && i < bi)) {
+            bv = best[l];
+            bi = i;
+        }
+    }
+    for j in chunks * L..n {
+        let t = g[j] - x * a[j];
+        let v = t * t * m[j];
+        if v > bv {
+            bv = v;
+            bi = j;
+        }
+    }
+    bi
+}
+
 /// One row's mutable state, borrowed from the layer state.
 pub(crate) struct RowMut<'s> {
     pub w_hat: &'s mut [f64],
@@ -92,8 +166,14 @@ pub(crate) struct RowMut<'s> {
 /// Score a block of rows: for each row, the best partner of every kept
 /// index, keeping candidates with `Δ < −tol[row]`. `avail` is workspace
 /// (`rows.len() · d_in`); on return it holds `1/A_jj` for `j ∉ S`, else 0.
+///
+/// The search for the partner runs in f32 (`a32` is `A` rounded, `g` and
+/// `1/A_jj` are rounded per block); the chosen pair is then priced exactly
+/// in f64, so rounding can only pick a slightly worse partner, never accept
+/// a move on a wrong price ([`apply_row`] re-prices again before applying).
 pub(crate) fn score_block(
     a: MatRef<'_, f64>,
+    a32: MatRef<'_, f32>,
     inv_diag: &[f64],
     rows: &[RowMut<'_>],
     tol: &[f64],
@@ -101,10 +181,14 @@ pub(crate) fn score_block(
     cands: &mut [Vec<Cand>],
 ) {
     let d = inv_diag.len();
+    let mut g32 = vec![0.0f32; rows.len() * d];
+    let mut m32 = vec![0.0f32; rows.len() * d];
     for (bi, row) in rows.iter().enumerate() {
         let m = &mut avail[bi * d..(bi + 1) * d];
         for j in 0..d {
             m[j] = if row.keep[j] { 0.0 } else { inv_diag[j] };
+            m32[bi * d + j] = m[j] as f32;
+            g32[bi * d + j] = row.g[j] as f32;
         }
         cands[bi].clear();
     }
@@ -113,13 +197,21 @@ pub(crate) fn score_block(
             continue;
         }
         let ai = col(a, i);
+        let ai32 = a32.col(i).try_as_col_major().expect("unit row stride").as_slice();
         for (bi, row) in rows.iter().enumerate() {
             if !row.keep[i] {
                 continue;
             }
             let wi = row.w_hat[i];
             let c0 = wi * (wi * ai[i] - 2.0 * row.g[i]);
-            let (v, j) = best_partner(wi, ai, row.g, &avail[bi * d..(bi + 1) * d]);
+            let rg = bi * d..(bi + 1) * d;
+            let j = best_partner_f32(wi as f32, ai32, &g32[rg.clone()], &m32[rg]);
+            let v = if j == usize::MAX {
+                0.0
+            } else {
+                let t = row.g[j] - wi * ai[j];
+                t * t * inv_diag[j]
+            };
             let delta = c0 - v;
             if j != usize::MAX && delta < -tol[bi] {
                 cands[bi].push(Cand { delta, out: i, inn: j });
