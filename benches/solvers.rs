@@ -94,7 +94,8 @@ fn time<T>(reps: usize, mut f: impl FnMut() -> T) -> (f64, T) {
 /// Peak resident memory of this process so far, in GiB (Linux `VmHWM`).
 fn peak_rss_gib() -> Option<f64> {
     let s = std::fs::read_to_string("/proc/self/status").ok()?;
-    let kib: f64 = s.lines().find(|l| l.starts_with("VmHWM:"))?.split_whitespace().nth(1)?.parse().ok()?;
+    let kib: f64 =
+        s.lines().find(|l| l.starts_with("VmHWM:"))?.split_whitespace().nth(1)?.parse().ok()?;
     Some(kib / (1024.0 * 1024.0))
 }
 

@@ -278,13 +278,14 @@ pub fn regularised(h: MatRef<'_, f64>, lambda: f64) -> Mat<f64> {
 /// Peak bytes a solve of a `d_out x d_in` layer needs, beyond the caller's
 /// copies of `W` and `H`: `A` and the OBS factors (`O(d_in²)`, up to four
 /// `d_in x d_in` f64 matrices alive at once) and the solver's working
-/// matrices (`O(d_out·d_in)`, up to twelve for the local search).
+/// matrices (`O(d_out·d_in)`, up to twelve for the local search, which also
+/// keeps an f32 copy of `A`).
 pub fn memory_estimate(d_out: usize, d_in: usize, method: Method) -> u128 {
     let (sq, rect) = (d_in as u128 * d_in as u128 * 8, d_out as u128 * d_in as u128 * 8);
     match method {
         Method::Magnitude | Method::Scaled => sq + 3 * rect,
         Method::Obs => 5 * sq + 4 * rect,
-        Method::L0 => 5 * sq + 12 * rect,
+        Method::L0 => 6 * sq + 12 * rect,
     }
 }
 
