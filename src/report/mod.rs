@@ -151,33 +151,48 @@ impl Report {
             _ => String::new(),
         };
         let mut out = String::new();
+        let ridge = match &s.ridge {
+            serde_json::Value::String(r) => r.clone(),
+            other => other.to_string(),
+        };
         let _ = writeln!(
             out,
-            "lopper {} | method {} | {target} | ridge {}",
-            s.tool_version, s.method, s.ridge
+            "lopper {} | method {} | {target} | ridge {ridge}",
+            s.tool_version, s.method
         );
         let wname = self.layers.iter().map(|l| l.name.len()).max().unwrap_or(5).max(5);
-        let _ = writeln!(
-            out,
-            "{:<wname$}  {:>11}  {:>17}  {:>8}  {:>11}  {:>11}  {:>7}",
-            "layer", "d_out x d_in", "kept / total", "zeros", "err calib", "err held", "sec"
+        // The local search's counters only mean something for it.
+        let search = s.method == "l0";
+        let mut head = format!(
+            "{:<wname$}  {:>11}  {:>17}  {:>8}  {:>11}  {:>11}  {:>6}",
+            "layer", "d_out x d_in", "kept / total", "zeros", "err calib", "err held", "alpha"
         );
-        let _ = writeln!(out, "{}", "-".repeat(wname + 78));
+        if search {
+            head.push_str(&format!("  {:>6}  {:>7}", "sweeps", "swaps"));
+        }
+        head.push_str(&format!("  {:>7}", "sec"));
+        let rule = "-".repeat(head.chars().count());
+        let _ = writeln!(out, "{head}");
+        let _ = writeln!(out, "{rule}");
         for l in &self.layers {
-            let _ = writeln!(
-                out,
-                "{:<wname$}  {:>11}  {:>17}  {:>7.2}%  {:>11}  {:>11}  {:>7.2}",
+            let mut row = format!(
+                "{:<wname$}  {:>11}  {:>17}  {:>7.2}%  {:>11}  {:>11}  {:>6}",
                 l.name,
                 format!("{}x{}", l.shape[0], l.shape[1]),
                 format!("{}/{}", l.kept, l.total),
                 100.0 * l.sparsity,
                 fmt_err(Some(l.rel_error)),
                 fmt_err(l.rel_error_holdout),
-                l.seconds
+                l.ridge_alpha
             );
+            if search {
+                row.push_str(&format!("  {:>6}  {:>7}", l.sweeps, l.swaps));
+            }
+            row.push_str(&format!("  {:>7.2}", l.seconds));
+            let _ = writeln!(out, "{row}");
         }
         let m = &self.summary;
-        let _ = writeln!(out, "{}", "-".repeat(wname + 78));
+        let _ = writeln!(out, "{rule}");
         let _ = writeln!(
             out,
             "{} layers, {:.2}% zeros ({} of {} weights kept); mean error calib {} held-out {}; {:.2} s",
