@@ -7,7 +7,10 @@ python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ig
 bash scripts/fetch-test-model.sh
 export LOPPER_TEST_MODEL="${LOPPER_TEST_MODEL:-${LOPPER_CACHE:-$HOME/.cache/lopper}/all-minilm-l6-v2}"
 cargo fmt --check
-# Doc tests first, so the suite's closing summary is the main one. Benches are
-# left out (`cargo bench --bench solvers` runs them).
-cargo test --release --doc
-cargo test --release --lib --bins --tests --examples "$@"
+log=$(mktemp)
+trap 'rm -f "$log"' EXIT
+# Benches are left out (`cargo bench --bench solvers` runs them).
+cargo test --release --doc 2>&1 | tee -a "$log"
+cargo test --release --lib --bins --tests --examples "$@" 2>&1 | tee -a "$log"
+# One closing line over every test binary.
+awk '/^test result:/ { p += $4; f += $6 } END { printf "lopper: %d passed, %d failed\n", p, f }' "$log"
