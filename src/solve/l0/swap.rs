@@ -42,119 +42,76 @@ pub(crate) struct Cand {
     pub inn: usize,
 }
 
-/// Largest `(g_j − x a_j)² m_j` and its index (`usize::MAX` when every
-/// `m_j = 0`). Eight independent lanes with branch-free updates so the loop
-/// vectorises; ties go to the lower index.
-#[inline]
-fn best_partner(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
-    #[cfg(target_arch = "x86_64")]
-    if std::arch::is_x86_feature_detected!("avx2") {
-        // SAFETY: the CPU supports AVX2, checked just above.
-        return unsafe { best_partner_avx2(x, a, g, m) };
-    }
-    best_partner_body(x, a, g, m)
+/// Defines a lane-parallel search for the largest `(g_j − x a_j)² m_j` and
+/// its index (`usize::MAX` when every `m_j = 0`), for one float type: `$lanes`
+/// independent lanes with branch-free updates so the loop vectorises, `$idx`
+/// lane indices (as wide as the floats, so the lanes pair up), ties to the
+/// lower index; plus an AVX2 build of the same operations (wider registers,
+/// no FMA contraction, so the results are identical) picked at run time.
+macro_rules! best_partner_search {
+    ($entry:ident, $avx2:ident, $body:ident, $t:ty, $lanes:expr, $idx:ty) => {
+        #[inline]
+        fn $entry(x: $t, a: &[$t], g: &[$t], m: &[$t]) -> ($t, usize) {
+            #[cfg(target_arch = "x86_64")]
+            if std::arch::is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU supports AVX2, checked just above.
+                return unsafe { $avx2(x, a, g, m) };
+            }
+            $body(x, a, g, m)
+        }
+
+        #[cfg(target_arch = "x86_64")]
+        #[target_feature(enable = "avx2")]
+        fn $avx2(x: $t, a: &[$t], g: &[$t], m: &[$t]) -> ($t, usize) {
+            $body(x, a, g, m)
+        }
+
+        #[inline(always)]
+        fn $body(x: $t, a: &[$t], g: &[$t], m: &[$t]) -> ($t, usize) {
+            const L: usize = $lanes;
+            let n = g.len().min(a.len()).min(m.len());
+            let (a, g, m) = (&a[..n], &g[..n], &m[..n]);
+            let mut best = [0.0 as $t; L];
+            let mut idx = [<$idx>::MAX; L];
+            let chunks = n / L;
+            for c in 0..chunks {
+                let base = c * L;
+                let (ac, gc, mc) = (&a[base..base + L], &g[base..base + L], &m[base..base + L]);
+                for l in 0..L {
+                    let t = gc[l] - x * ac[l];
+                    let v = t * t * mc[l];
+                    let gt = v > best[l];
+                    best[l] = if gt { v } else { best[l] };
+                    idx[l] = if gt { (base + l) as $idx } else { idx[l] };
+                }
+            }
+            let (mut bv, mut bi) = (0.0 as $t, usize::MAX);
+            for l in 0..L {
+                let i = idx[l] as usize;
+                if idx[l] != <$idx>::MAX
+                    && (best[l] > bv || (best[l] == bv && best[l] > 0.0 && i < bi))
+                {
+                    bv = best[l];
+                    bi = i;
+                }
+            }
+            for j in chunks * L..n {
+                let t = g[j] - x * a[j];
+                let v = t * t * m[j];
+                if v > bv {
+                    bv = v;
+                    bi = j;
+                }
+            }
+            (bv, bi)
+        }
+    };
 }
 
-/// [`best_partner`] compiled for AVX2 (same operations, wider registers;
-/// no FMA contraction, so the results are identical).
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-fn best_partner_avx2(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
-    best_partner_body(x, a, g, m)
-}
-
-#[inline(always)]
-fn best_partner_body(x: f64, a: &[f64], g: &[f64], m: &[f64]) -> (f64, usize) {
-    const L: usize = 8;
-    let n = g.len().min(a.len()).min(m.len());
-    let (a, g, m) = (&a[..n], &g[..n], &m[..n]);
-    let mut best = [0.0f64; L];
-    let mut idx = [usize::MAX; L];
-    let chunks = n / L;
-    for c in 0..chunks {
-        let base = c * L;
-        let (ac, gc, mc) = (&a[base..base + L], &g[base..base + L], &m[base..base + L]);
-        for l in 0..L {
-            let t = gc[l] - x * ac[l];
-            let v = t * t * mc[l];
-            let gt = v > best[l];
-            best[l] = if gt { v } else { best[l] };
-            idx[l] = if gt { base + l } else { idx[l] };
-        }
-    }
-    let (mut bv, mut bi) = (0.0, usize::MAX);
-    for l in 0..L {
-        if best[l] > bv || (best[l] == bv && best[l] > 0.0 && idx[l] < bi) {
-            bv = best[l];
-            bi = idx[l];
-        }
-    }
-    for j in chunks * L..n {
-        let t = g[j] - x * a[j];
-        let v = t * t * m[j];
-        if v > bv {
-            bv = v;
-            bi = j;
-        }
-    }
-    (bv, bi)
-}
-
-/// [`best_partner`] in f32 (twice the lanes): only picks the index; the
-/// caller prices the chosen pair exactly in f64.
-#[inline]
-fn best_partner_f32(x: f32, a: &[f32], g: &[f32], m: &[f32]) -> usize {
-    #[cfg(target_arch = "x86_64")]
-    if std::arch::is_x86_feature_detected!("avx2") {
-        // SAFETY: the CPU supports AVX2, checked just above.
-        return unsafe { best_partner_f32_avx2(x, a, g, m) };
-    }
-    best_partner_f32_body(x, a, g, m)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-fn best_partner_f32_avx2(x: f32, a: &[f32], g: &[f32], m: &[f32]) -> usize {
-    best_partner_f32_body(x, a, g, m)
-}
-
-#[inline(always)]
-fn best_partner_f32_body(x: f32, a: &[f32], g: &[f32], m: &[f32]) -> usize {
-    const L: usize = 16;
-    let n = g.len().min(a.len()).min(m.len());
-    let (a, g, m) = (&a[..n], &g[..n], &m[..n]);
-    let mut best = [0.0f32; L];
-    let mut idx = [u32::MAX; L];
-    let chunks = n / L;
-    for c in 0..chunks {
-        let base = c * L;
-        let (ac, gc, mc) = (&a[base..base + L], &g[base..base + L], &m[base..base + L]);
-        for l in 0..L {
-            let t = gc[l] - x * ac[l];
-            let v = t * t * mc[l];
-            let gt = v > best[l];
-            best[l] = if gt { v } else { best[l] };
-            idx[l] = if gt { (base + l) as u32 } else { idx[l] };
-        }
-    }
-    let (mut bv, mut bi) = (0.0, usize::MAX);
-    for l in 0..L {
-        let i = idx[l] as usize;
-        if idx[l] != u32::MAX && (best[l] > bv || (best[l] == bv && best[l] > 0.0 && i < bi)) {
-            bv = best[l];
-            bi = i;
-        }
-    }
-    for j in chunks * L..n {
-        let t = g[j] - x * a[j];
-        let v = t * t * m[j];
-        if v > bv {
-            bv = v;
-            bi = j;
-        }
-    }
-    bi
-}
+// f64: prices are used as found. f32 (twice the lanes): only the index is
+// used; the caller prices the chosen pair exactly in f64.
+best_partner_search!(best_partner, best_partner_avx2, best_partner_body, f64, 8, usize);
+best_partner_search!(best_partner_f32, best_partner_f32_avx2, best_partner_f32_body, f32, 16, u32);
 
 /// One row's mutable state, borrowed from the layer state.
 pub(crate) struct RowMut<'s> {
@@ -205,7 +162,7 @@ pub(crate) fn score_block(
             let wi = row.w_hat[i];
             let c0 = wi * (wi * ai[i] - 2.0 * row.g[i]);
             let rg = bi * d..(bi + 1) * d;
-            let j = best_partner_f32(wi as f32, ai32, &g32[rg.clone()], &m32[rg]);
+            let j = best_partner_f32(wi as f32, ai32, &g32[rg.clone()], &m32[rg]).1;
             let v = if j == usize::MAX {
                 0.0
             } else {
