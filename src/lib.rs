@@ -40,6 +40,7 @@
 //! ```
 #![warn(missing_docs)]
 
+pub mod arch;
 pub mod calib;
 pub mod cli;
 pub mod io;
@@ -47,3 +48,4 @@ pub mod pipeline;
 pub mod report;
 pub mod select;
 pub mod solve;
+pub mod textcal;

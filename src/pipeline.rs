@@ -15,6 +15,7 @@ use crate::io::{self, Model, TensorFile, TensorInfo};
 use crate::report::{LayerReport, Report, Settings, Summary, VALIDATION_NOTICE};
 use crate::select::Selection;
 use crate::solve::{self, objective, L0Params, Method, Pattern, Scope, SolveParams};
+use crate::textcal::TextSource;
 use faer::{Mat, Par};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -37,13 +38,33 @@ pub enum Ridge {
     },
 }
 
+/// The source of calibration inputs.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Calibration {
+    /// A safetensors file with one `[rows, d_in]` tensor per pruned layer,
+    /// named like its weight.
+    Activations(PathBuf),
+    /// Text run through the model itself (see [`crate::textcal`]).
+    Text(TextSource),
+}
+
+impl Calibration {
+    /// The file the calibration data is read from.
+    pub fn path(&self) -> &Path {
+        match self {
+            Calibration::Activations(p) => p,
+            Calibration::Text(t) => &t.path,
+        }
+    }
+}
+
 /// Everything a prune run needs, validated by the caller's flag parsing.
 #[derive(Clone, Debug)]
 pub struct PruneConfig {
     /// Model file, index or directory.
     pub model: PathBuf,
-    /// Activations file.
-    pub activations: PathBuf,
+    /// Where the calibration inputs come from.
+    pub calibration: Calibration,
     /// Output file (single-file model) or directory.
     pub output: PathBuf,
     /// JSON report path.
@@ -133,7 +154,7 @@ struct Job<'a> {
     rows: usize,
 }
 
-fn pattern_label(p: Pattern) -> (Option<f64>, Option<String>, &'static str) {
+pub(crate) fn pattern_label(p: Pattern) -> (Option<f64>, Option<String>, &'static str) {
     match p {
         Pattern::Unstructured { sparsity, scope: Scope::Row } => (Some(sparsity), None, "row"),
         Pattern::Unstructured { sparsity, scope: Scope::Layer } => (Some(sparsity), None, "layer"),
@@ -142,7 +163,7 @@ fn pattern_label(p: Pattern) -> (Option<f64>, Option<String>, &'static str) {
 }
 
 /// Canonical form of a path that may not exist yet.
-fn canonical(p: &Path) -> PathBuf {
+pub(crate) fn canonical(p: &Path) -> PathBuf {
     if let Ok(c) = p.canonicalize() {
         return c;
     }
@@ -156,7 +177,7 @@ fn canonical(p: &Path) -> PathBuf {
 /// Refuse output paths that are inputs, or that collide with each other.
 fn check_outputs(cfg: &PruneConfig, model: &Model) -> Result<(), Error> {
     let mut inputs: Vec<PathBuf> = model.input_files();
-    inputs.push(canonical(&cfg.activations));
+    inputs.push(canonical(cfg.calibration.path()));
     inputs.push(canonical(model.layout().root()));
     let mut outs = vec![("-o", &cfg.output)];
     if let Some(r) = &cfg.report {
@@ -186,7 +207,12 @@ fn check_outputs(cfg: &PruneConfig, model: &Model) -> Result<(), Error> {
 }
 
 /// Check every selected layer against its activation tensor.
-fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Vec<Job<'a>>, Error> {
+fn plan<'a>(
+    cfg: &PruneConfig,
+    model: &'a Model,
+    acts: &TensorFile,
+    apath: &Path,
+) -> Result<Vec<Job<'a>>, Error> {
     let all = model.tensors();
     let names: Vec<&str> = all.iter().map(|t| t.name.as_str()).collect();
     let unmatched = cfg.selection.unmatched_only(&names);
@@ -206,7 +232,7 @@ fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Ve
             cfg.model.display()
         )));
     }
-    let apath = cfg.activations.display();
+    let apath = apath.display();
     let mut jobs = Vec::with_capacity(selected.len());
     for w in selected {
         let (d_out, d_in) = (w.shape[0], w.shape[1]);
@@ -266,7 +292,7 @@ fn plan<'a>(cfg: &PruneConfig, model: &'a Model, acts: &TensorFile) -> Result<Ve
 }
 
 /// Bytes of memory the system can still hand out (`MemAvailable`), if known.
-fn available_memory() -> Option<u128> {
+pub(crate) fn available_memory() -> Option<u128> {
     let text = std::fs::read_to_string("/proc/meminfo").ok()?;
     let line = text.lines().find(|l| l.starts_with("MemAvailable:"))?;
     let kib: u128 = line.split_whitespace().nth(1)?.parse().ok()?;
@@ -276,7 +302,7 @@ fn available_memory() -> Option<u128> {
 /// Refuse a layer whose statistics and solver state cannot fit in memory.
 /// `need` counts the two Gram matrices, `W` and its pruned copy, plus the
 /// solver's own estimate.
-fn check_memory(
+pub(crate) fn check_memory(
     name: &str,
     d_out: usize,
     d_in: usize,
@@ -316,10 +342,14 @@ fn stored_nonzeros(values: &[f64], dtype: io::Dtype) -> Result<usize, String> {
 }
 
 /// Result of pruning one layer.
-struct Solved {
-    values: Vec<f64>,
-    report: LayerReport,
-    trace: Vec<f64>,
+#[derive(Clone, Debug)]
+pub struct Solved {
+    /// Pruned weight, row-major `[d_out, d_in]`.
+    pub values: Vec<f64>,
+    /// The layer's report row (`seconds` covers the solve only).
+    pub report: LayerReport,
+    /// Local-search objective after each sweep (when tracing).
+    pub trace: Vec<f64>,
 }
 
 fn prune_one(
@@ -344,6 +374,28 @@ fn prune_one(
         grams.add_chunk(&x, start, cfg.holdout, par);
         start = end;
     }
+    let mut s = solve_layer(cfg, &info.name, info.dtype, w.as_ref(), &grams, par)?;
+    s.report.seconds = t0.elapsed().as_secs_f64();
+    Ok(s)
+}
+
+/// Prune one layer with weight `w` (`[d_out, d_in]`, stored as `dtype` in
+/// the model) from its calibration statistics: choose the ridge as `cfg`
+/// says, solve, and measure calibration and held-out error.
+///
+/// # Errors
+/// [`ErrorKind::Solve`] when the solver fails or the result cannot be stored
+/// as `dtype`.
+pub fn solve_layer(
+    cfg: &PruneConfig,
+    name: &str,
+    dtype: io::Dtype,
+    w: faer::MatRef<'_, f64>,
+    grams: &LayerGrams,
+    par: Par,
+) -> Result<Solved, Error> {
+    let t0 = Instant::now();
+    let (d_out, d_in) = (w.nrows(), w.ncols());
     let h = grams.calib.matrix();
     let held = (grams.holdout.rows() > 0).then(|| grams.holdout.matrix());
     let base = SolveParams {
@@ -355,7 +407,7 @@ fn prune_one(
     };
     let solve_err = |e: solve::SolveError| Error {
         kind: ErrorKind::Solve,
-        message: format!("layer '{}' [{d_out}, {d_in}]: {e}", info.name),
+        message: format!("layer '{name}' [{d_out}, {d_in}]: {e}"),
     };
     let alpha = match cfg.ridge {
         Ridge::Fixed(a) => a,
@@ -373,8 +425,8 @@ fn prune_one(
             let proxy = if cfg.method == Method::L0 { Method::Obs } else { cfg.method };
             for &a in AUTO_RIDGE_GRID {
                 let p = SolveParams { ridge_alpha: a, method: proxy, ..base.clone() };
-                let trial = solve::prune_layer(w.as_ref(), h, &p, par).map_err(solve_err)?;
-                let e = objective::relative_error(w.as_ref(), trial.weight.as_ref(), held, par);
+                let trial = solve::prune_layer(w, h, &p, par).map_err(solve_err)?;
+                let e = objective::relative_error(w, trial.weight.as_ref(), held, par);
                 if e < best.0 {
                     best = (e, a);
                 }
@@ -383,28 +435,24 @@ fn prune_one(
         }
     };
     let params = SolveParams { ridge_alpha: alpha, ..base };
-    let pruned = solve::prune_layer(w.as_ref(), h, &params, par).map_err(solve_err)?;
+    let pruned = solve::prune_layer(w, h, &params, par).map_err(solve_err)?;
     let what = pruned.weight;
-    let rel_error = objective::relative_error(w.as_ref(), what.as_ref(), h, par);
-    let rel_error_holdout =
-        held.map(|hh| objective::relative_error(w.as_ref(), what.as_ref(), hh, par));
+    let rel_error = objective::relative_error(w, what.as_ref(), h, par);
+    let rel_error_holdout = held.map(|hh| objective::relative_error(w, what.as_ref(), hh, par));
     let mut values = Vec::with_capacity(d_out * d_in);
     for r in 0..d_out {
         for c in 0..d_in {
             values.push(what[(r, c)]);
         }
     }
-    let kept = stored_nonzeros(&values, info.dtype).map_err(|e| Error {
+    let kept = stored_nonzeros(&values, dtype).map_err(|e| Error {
         kind: ErrorKind::Solve,
-        message: format!(
-            "layer '{}': pruned weights cannot be stored as {:?}: {e}",
-            info.name, info.dtype
-        ),
+        message: format!("layer '{name}': pruned weights cannot be stored as {dtype:?}: {e}"),
     })?;
     let total = d_out * d_in;
     let si = pruned.info;
     let report = LayerReport {
-        name: info.name.clone(),
+        name: name.to_string(),
         shape: [d_out, d_in],
         kept,
         total,
@@ -434,9 +482,15 @@ fn prune_one(
 pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Report, Error> {
     let t0 = Instant::now();
     let model = Model::open(&cfg.model)?;
-    let acts = TensorFile::open(&cfg.activations)?;
+    let apath = match &cfg.calibration {
+        Calibration::Activations(p) => p,
+        Calibration::Text(_) => {
+            return Err(Error::input("--text calibration is not available yet; use --activations"))
+        }
+    };
+    let acts = TensorFile::open(apath)?;
     check_outputs(cfg, &model)?;
-    let jobs = plan(cfg, &model, &acts)?;
+    let jobs = plan(cfg, &model, &acts, apath)?;
     let par = if cfg.threads > 1 { Par::rayon(cfg.threads) } else { Par::Seq };
 
     progress(Progress::Start(jobs.len()));
@@ -466,7 +520,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         holdout: cfg.holdout,
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
         model: cfg.model.display().to_string(),
-        activations: cfg.activations.display().to_string(),
+        activations: cfg.calibration.path().display().to_string(),
         threads: cfg.threads,
     };
     let mut meta = BTreeMap::new();

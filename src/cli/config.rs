@@ -2,7 +2,7 @@
 //! option at fault.
 
 use super::args::{MethodArg, PruneArgs, ScopeArg};
-use crate::pipeline::{PruneConfig, Ridge};
+use crate::pipeline::{Calibration, PruneConfig, Ridge};
 use crate::select::Selection;
 use crate::solve::{L0Params, Method, Pattern, Scope};
 
@@ -81,7 +81,7 @@ pub fn prune_config(args: &PruneArgs) -> Result<PruneConfig, String> {
     }
     Ok(PruneConfig {
         model: args.model.clone(),
-        activations: args.activations.clone(),
+        calibration: Calibration::Activations(args.activations.clone()),
         output: args.output.clone(),
         report: args.report.clone(),
         trace: args.trace.clone(),

@@ -1,0 +1,571 @@
+//! Forward passes of the supported architecture families, on CPU in f32.
+//!
+//! This module owns: reading `config.json` into an [`ArchConfig`], building a
+//! [`Network`] from a model's safetensors tensors, and running it block by
+//! block with a *tap* that sees the input of every group of linear layers.
+//! It knows nothing about pruning; the calibration driver
+//! (`crate::textcal`) calls [`Network::embed`], [`Network::block`] and
+//! [`Network::set_weight`].
+//!
+//! Families (from `model_type`):
+//! - [`bert`]: BERT-style encoders (`bert`): token/position/type embeddings,
+//!   post-norm blocks, GELU (erf form).
+//! - [`llama`]: Llama-style decoders (`llama`, `mistral`, `qwen2`): RMSNorm,
+//!   rotary position embeddings, SwiGLU MLP, grouped-query attention, causal
+//!   mask.
+//! - [`gpt2`]: GPT-2-style decoders (`gpt2`): learned positions, pre-norm,
+//!   GELU (tanh form), weights stored `[d_in, d_out]`.
+//!
+//! Conventions shared by every family:
+//! - A batch is `n` sequences of the same length `L`, every token real: no
+//!   padding and no attention mask beyond the causal one of decoders.
+//!   Callers group sequences by length instead.
+//! - Every [`Linear`] holds its weight as `[d_out, d_in]` whatever the
+//!   stored layout; `transposed` says the file stores `[d_in, d_out]`.
+//! - Blocks compute in f32 with candle-core's CPU backend.
+
+pub mod bert;
+pub mod gpt2;
+pub mod llama;
+
+use crate::io::Model;
+use candle_core::{DType, Device, Tensor, D};
+use std::collections::BTreeMap;
+use std::fmt;
+use std::path::Path;
+
+/// The supported `model_type` values, for messages.
+pub const SUPPORTED: &str = "bert, llama, mistral, qwen2, gpt2";
+
+/// What went wrong while reading a config or running a network.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum ArchErrorKind {
+    /// `config.json` is missing, unreadable or not the expected JSON.
+    Config,
+    /// The `model_type` is not one of [`SUPPORTED`].
+    Unsupported,
+    /// A tensor the architecture needs is missing or has the wrong shape.
+    Weights,
+    /// A tensor operation failed during the forward pass.
+    Compute,
+}
+
+/// An architecture error: one line naming the file, tensor or setting.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct ArchError {
+    kind: ArchErrorKind,
+    message: String,
+}
+
+impl ArchError {
+    pub(crate) fn new(kind: ArchErrorKind, message: impl Into<String>) -> Self {
+        ArchError { kind, message: message.into() }
+    }
+
+    /// What went wrong.
+    pub fn kind(&self) -> ArchErrorKind {
+        self.kind
+    }
+}
+
+impl fmt::Display for ArchError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(&self.message)
+    }
+}
+
+impl std::error::Error for ArchError {}
+
+impl From<candle_core::Error> for ArchError {
+    fn from(e: candle_core::Error) -> Self {
+        // candle's messages can span lines (backtraces); keep the first.
+        let text = e.to_string();
+        let first = text.lines().next().unwrap_or("tensor operation failed");
+        ArchError::new(ArchErrorKind::Compute, format!("forward pass: {first}"))
+    }
+}
+
+/// Result alias for this module.
+pub type Result<T> = std::result::Result<T, ArchError>;
+
+/// Encoder (sentence embeddings) or decoder (next-token logits).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Kind {
+    /// Bidirectional encoder; [`Network::output`] gives mean-pooled
+    /// embeddings `[n, d]`.
+    Encoder,
+    /// Causal decoder; [`Network::output`] gives logits `[n, L, vocab]`.
+    Decoder,
+}
+
+/// Architecture family.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Family {
+    /// BERT-style encoder.
+    Bert,
+    /// Llama-style decoder (llama, mistral, qwen2).
+    Llama,
+    /// GPT-2-style decoder.
+    Gpt2,
+}
+
+/// `config.json`, parsed: the family plus the raw JSON for family-specific
+/// fields.
+#[derive(Clone, Debug)]
+pub struct ArchConfig {
+    /// The `model_type` string as written.
+    pub model_type: String,
+    /// Family it maps to.
+    pub family: Family,
+    /// The whole JSON object.
+    pub json: serde_json::Value,
+    /// Where it was read from (for messages).
+    pub path: String,
+}
+
+impl ArchConfig {
+    /// Read `dir/config.json`.
+    ///
+    /// # Errors
+    /// [`ArchErrorKind::Config`] when the file is missing or not a JSON
+    /// object with a `model_type`; [`ArchErrorKind::Unsupported`] for other
+    /// model types (the message names the supported ones and `--activations`).
+    pub fn read(dir: &Path) -> Result<Self> {
+        let path = dir.join("config.json");
+        let shown = path.display().to_string();
+        let text = std::fs::read_to_string(&path).map_err(|e| {
+            ArchError::new(
+                ArchErrorKind::Config,
+                format!("{shown}: cannot read the model config ({e}); text calibration needs config.json next to the weights"),
+            )
+        })?;
+        Self::parse(&text, &shown)
+    }
+
+    /// Parse config text; `path` is used in messages.
+    pub fn parse(text: &str, path: &str) -> Result<Self> {
+        let json: serde_json::Value = serde_json::from_str(text).map_err(|e| {
+            ArchError::new(ArchErrorKind::Config, format!("{path}: not valid JSON ({e})"))
+        })?;
+        let model_type = json
+            .get("model_type")
+            .and_then(|v| v.as_str())
+            .ok_or_else(|| {
+                ArchError::new(ArchErrorKind::Config, format!("{path}: no \"model_type\" string"))
+            })?
+            .to_string();
+        let family = match model_type.as_str() {
+            "bert" => Family::Bert,
+            "llama" | "mistral" | "qwen2" => Family::Llama,
+            "gpt2" => Family::Gpt2,
+            other => {
+                return Err(ArchError::new(
+                    ArchErrorKind::Unsupported,
+                    format!(
+                        "{path}: model_type '{other}' is not supported for text calibration \
+                         (supported: {SUPPORTED}); for any other model, collect the layer inputs \
+                         yourself and pass them with --activations"
+                    ),
+                ))
+            }
+        };
+        Ok(ArchConfig { model_type, family, json, path: path.to_string() })
+    }
+
+    /// A required unsigned integer field.
+    pub fn usize(&self, key: &str) -> Result<usize> {
+        self.json.get(key).and_then(|v| v.as_u64()).map(|v| v as usize).ok_or_else(|| {
+            ArchError::new(
+                ArchErrorKind::Config,
+                format!("{}: missing or non-integer \"{key}\"", self.path),
+            )
+        })
+    }
+
+    /// An optional unsigned integer field.
+    pub fn usize_or(&self, key: &str, default: usize) -> usize {
+        self.json.get(key).and_then(|v| v.as_u64()).map_or(default, |v| v as usize)
+    }
+
+    /// An optional float field.
+    pub fn f64_or(&self, key: &str, default: f64) -> f64 {
+        self.json.get(key).and_then(|v| v.as_f64()).unwrap_or(default)
+    }
+
+    /// An optional boolean field.
+    pub fn bool_or(&self, key: &str, default: bool) -> bool {
+        self.json.get(key).and_then(|v| v.as_bool()).unwrap_or(default)
+    }
+}
+
+/// One linear layer `y = x Wᵀ + b`.
+#[derive(Clone, Debug)]
+pub struct Linear {
+    /// Name of the weight tensor in the model file.
+    pub name: String,
+    /// Weight `[d_out, d_in]`, f32, contiguous.
+    pub weight: Tensor,
+    /// Bias `[d_out]`, if any.
+    pub bias: Option<Tensor>,
+    /// The file stores the weight as `[d_in, d_out]` (GPT-2 style).
+    pub transposed: bool,
+}
+
+impl Linear {
+    /// `[d_out, d_in]`.
+    pub fn shape(&self) -> (usize, usize) {
+        let d = self.weight.dims();
+        (d[0], d[1])
+    }
+
+    /// `x [.., d_in] → [.., d_out]`.
+    pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
+        let y = x.broadcast_matmul(&self.weight.t()?)?;
+        Ok(match &self.bias {
+            Some(b) => y.broadcast_add(b)?,
+            None => y,
+        })
+    }
+}
+
+/// Linear layers of one block that read the same input, so they share one
+/// Gram matrix.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Group {
+    /// Short label, e.g. `"attention input"`.
+    pub label: String,
+    /// Weight tensor names, in forward order.
+    pub layers: Vec<String>,
+}
+
+/// A batch of `n` token sequences of equal length, all tokens real.
+#[derive(Clone, Debug)]
+pub struct Batch {
+    /// Token ids `[n, L]`, u32.
+    pub ids: Tensor,
+}
+
+impl Batch {
+    /// Build from equal-length id sequences.
+    ///
+    /// # Panics
+    /// If `seqs` is empty or the lengths differ (caller contract).
+    #[track_caller]
+    pub fn new(seqs: &[Vec<u32>]) -> Self {
+        assert!(!seqs.is_empty(), "empty batch");
+        let l = seqs[0].len();
+        assert!(seqs.iter().all(|s| s.len() == l), "sequences of different lengths");
+        let flat: Vec<u32> = seqs.iter().flatten().copied().collect();
+        let ids = Tensor::from_vec(flat, (seqs.len(), l), &Device::Cpu).expect("shape matches");
+        Batch { ids }
+    }
+
+    /// `(n, L)`.
+    pub fn dims(&self) -> (usize, usize) {
+        let d = self.ids.dims();
+        (d[0], d[1])
+    }
+}
+
+/// Receives the input of group `g` of the current block as `[n·L, d_in]`.
+pub type Tap<'a> = dyn FnMut(usize, &Tensor) -> Result<()> + 'a;
+
+/// A network that can be run block by block.
+pub trait Network: Send + Sync {
+    /// Family.
+    fn family(&self) -> Family;
+
+    /// Encoder or decoder.
+    fn kind(&self) -> Kind;
+
+    /// Number of blocks (transformer layers).
+    fn num_blocks(&self) -> usize;
+
+    /// The linear layers of block `b`, grouped by shared input, in forward
+    /// order.
+    fn groups(&self, b: usize) -> Vec<Group>;
+
+    /// Token embeddings (plus positions and types, as the family does):
+    /// `[n, L] → [n, L, d]`.
+    fn embed(&self, batch: &Batch) -> Result<Tensor>;
+
+    /// Block `b`: `[n, L, d] → [n, L, d]`. `tap(g, x)` is called with the
+    /// input of each group `g` of [`Network::groups`]`(b)`, flattened to
+    /// `[n·L, d_in]`, before the group's layers are applied.
+    fn block(&self, b: usize, x: &Tensor, tap: &mut Tap<'_>) -> Result<Tensor>;
+
+    /// After the last block: pooled embeddings `[n, d]` for encoders, logits
+    /// `[n, L, vocab]` for decoders.
+    fn output(&self, x: &Tensor) -> Result<Tensor>;
+
+    /// A linear layer by weight tensor name.
+    fn linear(&self, name: &str) -> Option<&Linear>;
+
+    /// Replace a linear layer's weight (`[d_out, d_in]`, row-major f32).
+    ///
+    /// # Errors
+    /// [`ArchErrorKind::Weights`] for an unknown name or a wrong length.
+    fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()>;
+
+    /// Run every block without taps and return [`Network::output`].
+    fn forward(&self, batch: &Batch) -> Result<Tensor> {
+        let mut x = self.embed(batch)?;
+        for b in 0..self.num_blocks() {
+            x = self.block(b, &x, &mut |_, _| Ok(()))?;
+        }
+        self.output(&x)
+    }
+}
+
+/// Build the network described by `dir/config.json` from `model`'s tensors.
+///
+/// # Errors
+/// Config errors, unsupported families, and missing or misshapen tensors.
+pub fn load(model: &Model) -> Result<Box<dyn Network>> {
+    let dir = model.layout().root();
+    let cfg = ArchConfig::read(dir)?;
+    let w = Weights::new(model);
+    Ok(match cfg.family {
+        Family::Bert => Box::new(bert::Bert::new(&cfg, &w)?),
+        Family::Llama => Box::new(llama::Llama::new(&cfg, &w)?),
+        Family::Gpt2 => Box::new(gpt2::Gpt2::new(&cfg, &w)?),
+    })
+}
+
+/// Tensor access for the family constructors: reads any float dtype as f32
+/// and checks shapes, with messages naming the tensor.
+pub struct Weights<'a> {
+    model: &'a Model,
+}
+
+impl<'a> Weights<'a> {
+    /// Wrap a model.
+    pub fn new(model: &'a Model) -> Self {
+        Weights { model }
+    }
+
+    /// Whether a tensor exists.
+    pub fn has(&self, name: &str) -> bool {
+        self.model.get(name).is_some()
+    }
+
+    /// The first of `prefixes` under which `probe` exists (e.g. `""` or
+    /// `"bert."`).
+    pub fn prefix<'p>(&self, prefixes: &[&'p str], probe: &str) -> Option<&'p str> {
+        prefixes.iter().copied().find(|p| self.has(&format!("{p}{probe}")))
+    }
+
+    /// Read a tensor of exactly `shape` as f32.
+    pub fn tensor(&self, name: &str, shape: &[usize]) -> Result<Tensor> {
+        let info = self.model.get(name).ok_or_else(|| {
+            ArchError::new(
+                ArchErrorKind::Weights,
+                format!("{}: missing tensor '{name}'", self.model.layout().root().display()),
+            )
+        })?;
+        if info.shape != shape {
+            return Err(ArchError::new(
+                ArchErrorKind::Weights,
+                format!("tensor '{name}' has shape {:?}; the config implies {shape:?}", info.shape),
+            ));
+        }
+        let data = self
+            .model
+            .read_f64(name)
+            .map_err(|e| ArchError::new(ArchErrorKind::Weights, e.to_string()))?;
+        let data: Vec<f32> = data.into_iter().map(|v| v as f32).collect();
+        Ok(Tensor::from_vec(data, shape, &Device::Cpu)?)
+    }
+
+    /// A linear layer stored `[d_out, d_in]` (or `[d_in, d_out]` when
+    /// `transposed`), with an optional bias `<stem>.bias`.
+    pub fn linear(
+        &self,
+        stem: &str,
+        d_in: usize,
+        d_out: usize,
+        bias: bool,
+        transposed: bool,
+    ) -> Result<Linear> {
+        let name = format!("{stem}.weight");
+        let weight = if transposed {
+            self.tensor(&name, &[d_in, d_out])?.t()?.contiguous()?
+        } else {
+            self.tensor(&name, &[d_out, d_in])?
+        };
+        let bias = if bias { Some(self.tensor(&format!("{stem}.bias"), &[d_out])?) } else { None };
+        Ok(Linear { name, weight, bias, transposed })
+    }
+}
+
+/// A named set of linear layers with checked replacement; the families keep
+/// their layers here so [`Network::linear`] and [`Network::set_weight`] are
+/// shared code.
+#[derive(Clone, Debug, Default)]
+pub struct Linears {
+    by_name: BTreeMap<String, Linear>,
+}
+
+impl Linears {
+    /// Add a layer; returns its name for the family's own bookkeeping.
+    pub fn add(&mut self, l: Linear) -> String {
+        let name = l.name.clone();
+        self.by_name.insert(name.clone(), l);
+        name
+    }
+
+    /// Look up by weight name.
+    pub fn get(&self, name: &str) -> Option<&Linear> {
+        self.by_name.get(name)
+    }
+
+    /// Look up a layer the family registered itself.
+    ///
+    /// # Panics
+    /// If the family never added it (a bug, not an input error).
+    #[track_caller]
+    pub fn at(&self, name: &str) -> &Linear {
+        self.by_name.get(name).unwrap_or_else(|| panic!("layer '{name}' was never added"))
+    }
+
+    /// Replace a weight, checking the length against `[d_out, d_in]`.
+    pub fn set(&mut self, name: &str, values: &[f32]) -> Result<()> {
+        let l = self.by_name.get_mut(name).ok_or_else(|| {
+            ArchError::new(ArchErrorKind::Weights, format!("no linear layer '{name}'"))
+        })?;
+        let (o, i) = l.shape();
+        if values.len() != o * i {
+            return Err(ArchError::new(
+                ArchErrorKind::Weights,
+                format!("layer '{name}': {} values for a [{o}, {i}] weight", values.len()),
+            ));
+        }
+        l.weight = Tensor::from_slice(values, (o, i), &Device::Cpu)?;
+        Ok(())
+    }
+}
+
+/// LayerNorm over the last dimension: `(x − μ)/√(σ² + ε)·γ + β`.
+pub fn layer_norm(x: &Tensor, gamma: &Tensor, beta: &Tensor, eps: f64) -> Result<Tensor> {
+    let mean = x.mean_keepdim(D::Minus1)?;
+    let xc = x.broadcast_sub(&mean)?;
+    let var = xc.sqr()?.mean_keepdim(D::Minus1)?;
+    let y = xc.broadcast_div(&(var + eps)?.sqrt()?)?;
+    Ok(y.broadcast_mul(gamma)?.broadcast_add(beta)?)
+}
+
+/// RMSNorm over the last dimension: `x/√(mean(x²) + ε)·γ`.
+pub fn rms_norm(x: &Tensor, gamma: &Tensor, eps: f64) -> Result<Tensor> {
+    let ms = x.sqr()?.mean_keepdim(D::Minus1)?;
+    Ok(x.broadcast_div(&(ms + eps)?.sqrt()?)?.broadcast_mul(gamma)?)
+}
+
+/// Softmax over the last dimension, shifted by the row maximum.
+pub fn softmax_last(x: &Tensor) -> Result<Tensor> {
+    let m = x.max_keepdim(D::Minus1)?;
+    let e = x.broadcast_sub(&m)?.exp()?;
+    Ok(e.broadcast_div(&e.sum_keepdim(D::Minus1)?)?)
+}
+
+/// Scaled dot-product attention on `[n, h, L, dh]` heads, with an optional
+/// causal mask: `softmax(Q Kᵀ/√dh + M) V`.
+pub fn attention(q: &Tensor, k: &Tensor, v: &Tensor, causal: bool) -> Result<Tensor> {
+    let dh = q.dim(D::Minus1)?;
+    let scores = (q.matmul(&k.t()?)? * (1.0 / (dh as f64).sqrt()))?;
+    let scores = if causal {
+        let l = q.dim(2)?;
+        let mask: Vec<f32> =
+            (0..l * l).map(|i| if i % l > i / l { f32::NEG_INFINITY } else { 0.0 }).collect();
+        let mask = Tensor::from_vec(mask, (l, l), &Device::Cpu)?;
+        scores.broadcast_add(&mask)?
+    } else {
+        scores
+    };
+    Ok(softmax_last(&scores)?.matmul(v)?)
+}
+
+/// `[n, L, h·dh] → [n, h, L, dh]` (contiguous).
+pub fn split_heads(x: &Tensor, heads: usize) -> Result<Tensor> {
+    let (n, l, d) = x.dims3()?;
+    Ok(x.reshape((n, l, heads, d / heads))?.transpose(1, 2)?.contiguous()?)
+}
+
+/// `[n, h, L, dh] → [n, L, h·dh]`.
+pub fn merge_heads(x: &Tensor) -> Result<Tensor> {
+    let (n, h, l, dh) = x.dims4()?;
+    Ok(x.transpose(1, 2)?.contiguous()?.reshape((n, l, h * dh))?)
+}
+
+/// `[n, L, d] → [n·L, d]` (the tap's view).
+pub fn rows(x: &Tensor) -> Result<Tensor> {
+    let d = x.dim(D::Minus1)?;
+    let count = x.elem_count() / d.max(1);
+    Ok(x.contiguous()?.reshape((count, d))?)
+}
+
+/// Copy a 2-D f32 tensor out as row-major f64.
+pub fn to_f64_rows(x: &Tensor) -> Result<Vec<f64>> {
+    let v: Vec<f32> = x.to_dtype(DType::F32)?.flatten_all()?.to_vec1()?;
+    Ok(v.into_iter().map(f64::from).collect())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn config_names_unsupported_types_and_the_way_around() {
+        let e = ArchConfig::parse(r#"{"model_type": "t5"}"#, "m/config.json").unwrap_err();
+        assert_eq!(e.kind(), ArchErrorKind::Unsupported);
+        let m = e.to_string();
+        assert!(m.contains("'t5'") && m.contains(SUPPORTED) && m.contains("--activations"), "{m}");
+        let e = ArchConfig::parse("{", "m/config.json").unwrap_err();
+        assert_eq!(e.kind(), ArchErrorKind::Config);
+        for (t, f) in [("bert", Family::Bert), ("qwen2", Family::Llama), ("gpt2", Family::Gpt2)] {
+            let c = ArchConfig::parse(&format!(r#"{{"model_type": "{t}"}}"#), "c").unwrap();
+            assert_eq!(c.family, f);
+        }
+    }
+
+    #[test]
+    fn softmax_and_norms_match_hand_formulas() {
+        let x = Tensor::new(&[[1.0f32, 2.0, 3.0], [0.0, 0.0, 0.0]], &Device::Cpu).unwrap();
+        let s: Vec<Vec<f32>> = softmax_last(&x).unwrap().to_vec2().unwrap();
+        let z: f32 = [1.0f32, 2.0, 3.0].iter().map(|v| v.exp()).sum();
+        assert!((s[0][2] - 3f32.exp() / z).abs() < 1e-6);
+        assert!((s[1][0] - 1.0 / 3.0).abs() < 1e-6);
+        let g = Tensor::new(&[1.0f32, 1.0, 1.0], &Device::Cpu).unwrap();
+        let b = Tensor::new(&[0.0f32, 0.0, 0.0], &Device::Cpu).unwrap();
+        let y: Vec<Vec<f32>> = layer_norm(&x, &g, &b, 0.0).unwrap().to_vec2().unwrap();
+        // (x − 2)/√(2/3) for x = 1, 2, 3.
+        assert!((y[0][0] + 1.224_744_9).abs() < 1e-5 && y[0][1].abs() < 1e-6);
+        let r: Vec<Vec<f32>> = rms_norm(&x, &g, 0.0).unwrap().to_vec2().unwrap();
+        // 3/√(14/3)
+        assert!((r[0][2] - 3.0 / (14.0f32 / 3.0).sqrt()).abs() < 1e-5);
+    }
+
+    #[test]
+    fn causal_attention_ignores_later_tokens() {
+        let dev = Device::Cpu;
+        let q = Tensor::randn(0f32, 1.0, (1, 1, 4, 3), &dev).unwrap();
+        let k = Tensor::randn(0f32, 1.0, (1, 1, 4, 3), &dev).unwrap();
+        let v = Tensor::randn(0f32, 1.0, (1, 1, 4, 3), &dev).unwrap();
+        let full: Vec<f32> =
+            attention(&q, &k, &v, true).unwrap().flatten_all().unwrap().to_vec1().unwrap();
+        // Changing the last key/value must not move the first three outputs.
+        let k2 = k.narrow(2, 0, 3).unwrap().contiguous().unwrap();
+        let v2 = v.narrow(2, 0, 3).unwrap().contiguous().unwrap();
+        let q2 = q.narrow(2, 0, 3).unwrap().contiguous().unwrap();
+        let part: Vec<f32> =
+            attention(&q2, &k2, &v2, true).unwrap().flatten_all().unwrap().to_vec1().unwrap();
+        for (a, b) in full[..9].iter().zip(&part) {
+            assert!((a - b).abs() < 1e-6);
+        }
+        // The first token attends only to itself: its output is v[0].
+        let v0: Vec<f32> = v.narrow(2, 0, 1).unwrap().flatten_all().unwrap().to_vec1().unwrap();
+        for (a, b) in full[..3].iter().zip(&v0) {
+            assert!((a - b).abs() < 1e-6);
+        }
+    }
+}
