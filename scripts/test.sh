@@ -3,7 +3,7 @@
 # Python reference packages, the real test model, then cargo's tests.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ignore numpy safetensors
+python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ignore numpy safetensors onnxruntime tokenizers
 bash scripts/fetch-test-model.sh
 export LOPPER_TEST_MODEL="${LOPPER_TEST_MODEL:-${LOPPER_CACHE:-$HOME/.cache/lopper}/all-minilm-l6-v2}"
 cargo fmt --check

@@ -85,6 +85,8 @@ pub struct PruneConfig {
     pub threads: usize,
     /// Local-search settings.
     pub l0: L0Params,
+    /// End-to-end comparison on held-out text, when asked for.
+    pub eval: Option<crate::evaluate::EvalOptions>,
 }
 
 /// What went wrong, and whose fault it is.
@@ -107,8 +109,14 @@ pub struct Error {
 }
 
 impl Error {
-    fn input(message: impl Into<String>) -> Self {
+    /// An input error.
+    pub(crate) fn input(message: impl Into<String>) -> Self {
         Error { kind: ErrorKind::Input, message: message.into() }
+    }
+
+    /// A failure while computing on valid input.
+    pub(crate) fn solve(message: impl Into<String>) -> Self {
+        Error { kind: ErrorKind::Solve, message: message.into() }
     }
 
     /// Whose fault.
@@ -144,6 +152,8 @@ pub enum Progress<'a> {
     Start(usize),
     /// Layer `index` (0-based) is starting.
     Layer(usize, &'a str),
+    /// All layers are done; the pruned model is compared with the dense one.
+    Evaluating,
     /// All layers are done; outputs are being written.
     Writing,
 }
@@ -482,28 +492,49 @@ pub fn solve_layer(
 pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Report, Error> {
     let t0 = Instant::now();
     let model = Model::open(&cfg.model)?;
-    let apath = match &cfg.calibration {
-        Calibration::Activations(p) => p,
-        Calibration::Text(_) => {
-            return Err(Error::input("--text calibration is not available yet; use --activations"))
-        }
-    };
-    let acts = TensorFile::open(apath)?;
     check_outputs(cfg, &model)?;
-    let jobs = plan(cfg, &model, &acts, apath)?;
+    if let Some(e) = &cfg.eval {
+        // Fail on a bad evaluation file before the long part.
+        crate::textcal::read_text(&e.text)?;
+    }
     let par = if cfg.threads > 1 { Par::rayon(cfg.threads) } else { Par::Seq };
 
-    progress(Progress::Start(jobs.len()));
     let mut replaced = BTreeMap::new();
-    let mut layers = Vec::with_capacity(jobs.len());
+    let mut layers = Vec::new();
     let mut traces = Vec::new();
-    for (i, job) in jobs.iter().enumerate() {
-        progress(Progress::Layer(i, &job.weight.name));
-        let s = prune_one(cfg, &model, &acts, job, par)?;
-        replaced.insert(job.weight.name.clone(), s.values);
-        traces.push((job.weight.name.clone(), s.trace));
-        layers.push(s.report);
+    let (mut activations, mut text, mut timing) = (None, None, None);
+    match &cfg.calibration {
+        Calibration::Activations(apath) => {
+            let acts = TensorFile::open(apath)?;
+            let jobs = plan(cfg, &model, &acts, apath)?;
+            progress(Progress::Start(jobs.len()));
+            for (i, job) in jobs.iter().enumerate() {
+                progress(Progress::Layer(i, &job.weight.name));
+                let s = prune_one(cfg, &model, &acts, job, par)?;
+                replaced.insert(job.weight.name.clone(), s.values);
+                traces.push((job.weight.name.clone(), s.trace));
+                layers.push(s.report);
+            }
+            activations = Some(apath.display().to_string());
+        }
+        Calibration::Text(src) => {
+            let run = crate::textcal::run(cfg, &model, src, progress, par)?;
+            replaced = run.replaced;
+            for (name, s) in run.solved {
+                traces.push((name, s.trace));
+                layers.push(s.report);
+            }
+            text = Some(run.description);
+            timing = Some(run.timing);
+        }
     }
+    let eval = match &cfg.eval {
+        Some(opts) => {
+            progress(Progress::Evaluating);
+            Some(crate::evaluate::evaluate(&model, &replaced, opts)?)
+        }
+        None => None,
+    };
     progress(Progress::Writing);
 
     let (sparsity, pattern, scope) = pattern_label(cfg.pattern);
@@ -520,7 +551,8 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         holdout: cfg.holdout,
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
         model: cfg.model.display().to_string(),
-        activations: cfg.calibration.path().display().to_string(),
+        activations,
+        text,
         threads: cfg.threads,
     };
     let mut meta = BTreeMap::new();
@@ -556,8 +588,15 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         outputs.push(path.display().to_string());
     }
     let summary = Summary::of(&layers, t0.elapsed().as_secs_f64());
-    let report =
-        Report { settings, layers, summary, outputs, notice: VALIDATION_NOTICE.to_string() };
+    let report = Report {
+        settings,
+        layers,
+        summary,
+        outputs,
+        timing,
+        eval,
+        notice: VALIDATION_NOTICE.to_string(),
+    };
     if let Some(path) = &cfg.report {
         let json = report.to_json();
         io::write_atomic(path, |w| std::io::Write::write_all(w, json.as_bytes()))?;

@@ -6,26 +6,6 @@ mod common;
 use common::*;
 use std::path::PathBuf;
 
-/// The model folder, or `None` (panics under CI, which must have it).
-fn model_dir() -> Option<PathBuf> {
-    let dir = std::env::var_os("LOPPER_TEST_MODEL").map(PathBuf::from).unwrap_or_else(|| {
-        PathBuf::from(std::env::var_os("HOME").unwrap_or_default())
-            .join(".cache/lopper/all-minilm-l6-v2")
-    });
-    if dir.join("model.safetensors").is_file() {
-        return Some(dir);
-    }
-    let msg = format!(
-        "the test model is missing at {}: run `bash scripts/fetch-test-model.sh`",
-        dir.display()
-    );
-    if in_ci() {
-        panic!("{msg}");
-    }
-    eprintln!("skipping: {msg}");
-    None
-}
-
 /// The 36 encoder linear weights: 6 per layer (common practice for BERT:
 /// query, key, value, attention output, intermediate, output).
 fn encoder_linears() -> Vec<String> {

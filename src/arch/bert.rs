@@ -188,6 +188,10 @@ impl Network for Bert {
         })
     }
 
+    fn max_positions(&self) -> Option<usize> {
+        Some(self.position.dims()[0])
+    }
+
     fn linear(&self, name: &str) -> Option<&Linear> {
         self.linears.get(name)
     }

@@ -221,7 +221,14 @@ impl Linear {
 
     /// `x [.., d_in] → [.., d_out]`.
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let y = x.broadcast_matmul(&self.weight.t()?)?;
+        // One 2-D product [rows, d_in]·Wᵀ, whatever the leading dimensions.
+        let dims = x.dims().to_vec();
+        let d_in = *dims.last().expect("at least 1-D");
+        let rows = x.elem_count() / d_in.max(1);
+        let y = x.contiguous()?.reshape((rows, d_in))?.matmul(&self.weight.t()?)?;
+        let mut out = dims;
+        *out.last_mut().expect("at least 1-D") = self.shape().0;
+        let y = y.reshape(out)?;
         Ok(match &self.bias {
             Some(b) => y.broadcast_add(b)?,
             None => y,
@@ -298,6 +305,11 @@ pub trait Network: Send + Sync {
     /// After the last block: pooled embeddings `[n, d]` for encoders, logits
     /// `[n, L, vocab]` for decoders.
     fn output(&self, x: &Tensor) -> Result<Tensor>;
+
+    /// Longest sequence the position embeddings allow, if limited.
+    fn max_positions(&self) -> Option<usize> {
+        None
+    }
 
     /// A linear layer by weight tensor name.
     fn linear(&self, name: &str) -> Option<&Linear>;

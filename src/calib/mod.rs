@@ -13,7 +13,7 @@
 //! `O(d_in²)` whatever the number of rows, and two accumulators over
 //! disjoint rows merge by addition.
 
-use faer::linalg::matmul::matmul;
+use faer::linalg::matmul::triangular::{self, BlockStructure};
 use faer::{Accum, Mat, MatRef, Par};
 
 /// Is row `i` of `n` held out at `fraction`? Row `i` is held out when
@@ -53,9 +53,25 @@ impl Gram {
         if n == 0 {
             return;
         }
-        // Row-major X (n x d) is column-major Xᵀ (d x n).
+        // Row-major X (n x d) is column-major Xᵀ (d x n). H is symmetric:
+        // accumulate its lower triangle (half the flops), then mirror it.
         let xt = MatRef::from_column_major_slice(x, d, n);
-        matmul(self.h.as_mut(), Accum::Add, xt, xt.transpose(), 1.0, par);
+        triangular::matmul(
+            self.h.as_mut(),
+            BlockStructure::TriangularLower,
+            Accum::Add,
+            xt,
+            BlockStructure::Rectangular,
+            xt.transpose(),
+            BlockStructure::Rectangular,
+            1.0,
+            par,
+        );
+        for c in 1..d {
+            for r in 0..c {
+                self.h[(r, c)] = self.h[(c, r)];
+            }
+        }
         self.rows += n;
     }
 

@@ -22,6 +22,35 @@ pub enum Command {
     Inspect(InspectArgs),
     /// Prune a model's linear layers and write the pruned model and a report.
     Prune(Box<PruneArgs>),
+    /// Compare a pruned model's outputs with its dense original on text.
+    Eval(EvalArgs),
+}
+
+/// `lopper eval`.
+#[derive(Debug, Args)]
+pub struct EvalArgs {
+    /// The dense model directory (config.json, tokenizer.json, weights).
+    pub dense: PathBuf,
+    /// The pruned weights: a .safetensors file or directory with the same
+    /// tensor names.
+    pub pruned: PathBuf,
+    /// UTF-8 text the pruning never saw. Encoders: one input per non-empty
+    /// line. Decoders: consecutive windows of --seq-len tokens.
+    #[arg(long, value_name = "FILE")]
+    pub text: PathBuf,
+    /// Most lines (encoders) or windows (decoders) to evaluate
+    /// [default: 1000 lines, 64 windows]
+    #[arg(long, value_name = "N")]
+    pub samples: Option<usize>,
+    /// Decoders: tokens per window [default: 256]
+    #[arg(long, value_name = "L")]
+    pub seq_len: Option<usize>,
+    /// Print JSON instead of a sentence.
+    #[arg(long)]
+    pub json: bool,
+    /// Worker threads (0 = all cores).
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub threads: usize,
 }
 
 /// `lopper inspect`.
@@ -65,13 +94,38 @@ pub enum ScopeArg {
 /// `lopper prune`.
 #[derive(Debug, Args)]
 #[command(group(ArgGroup::new("target").required(true).args(["sparsity", "pattern"])))]
+#[command(group(ArgGroup::new("calibration").required(true).args(["activations", "text"])))]
 pub struct PruneArgs {
     /// A .safetensors file, a *.safetensors.index.json, or a model directory.
     pub model: PathBuf,
     /// Safetensors file of calibration inputs: per pruned layer, a tensor
     /// named like its weight, shape [rows, d_in].
     #[arg(long, value_name = "FILE")]
-    pub activations: PathBuf,
+    pub activations: Option<PathBuf>,
+    /// UTF-8 calibration text, run through the model itself (MODEL must be a
+    /// directory with config.json and tokenizer.json; model types bert,
+    /// llama, mistral, qwen2, gpt2).
+    #[arg(long, value_name = "FILE")]
+    pub text: Option<PathBuf>,
+    /// Text calibration: number of token windows drawn from the text
+    /// [default: 128]
+    #[arg(long, value_name = "N")]
+    pub samples: Option<usize>,
+    /// Text calibration: tokens per window, special tokens included
+    /// [default: 128 for encoders, 256 for decoders]
+    #[arg(long, value_name = "L")]
+    pub seq_len: Option<usize>,
+    /// Text calibration: seed for drawing the windows [default: 0]
+    #[arg(long, value_name = "SEED")]
+    pub seed: Option<u64>,
+    /// Text calibration: collect every block's inputs from the dense model
+    /// instead of from the already pruned blocks before it.
+    #[arg(long)]
+    pub no_propagate: bool,
+    /// After pruning, compare the pruned model with the dense one on this
+    /// held-out text (as `lopper eval` does) and add it to the report.
+    #[arg(long, value_name = "FILE")]
+    pub eval_text: Option<PathBuf>,
     /// Fraction of weights to zero, in [0, 1).
     #[arg(long, value_name = "S", allow_negative_numbers = true)]
     pub sparsity: Option<f64>,
@@ -100,8 +154,8 @@ pub struct PruneArgs {
     /// [default: auto, or 0.01 for a layer without held-out rows]
     #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
     pub ridge: Option<String>,
-    /// Fraction of activation rows held out from the solver to measure
-    /// overfitting, in [0, 1).
+    /// Fraction of activation rows (text: of token windows) held out from
+    /// the solver to measure overfitting, in [0, 1).
     #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]
     pub holdout: f64,
     /// Prune only 2-D float tensors matching GLOB (repeatable).

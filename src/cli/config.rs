@@ -2,9 +2,11 @@
 //! option at fault.
 
 use super::args::{MethodArg, PruneArgs, ScopeArg};
+use crate::evaluate::EvalOptions;
 use crate::pipeline::{Calibration, PruneConfig, Ridge};
 use crate::select::Selection;
 use crate::solve::{L0Params, Method, Pattern, Scope};
+use crate::textcal::TextSource;
 
 /// α for layers that have no held-out rows to choose one with.
 pub const DEFAULT_RIDGE: f64 = 0.01;
@@ -79,9 +81,42 @@ pub fn prune_config(args: &PruneArgs) -> Result<PruneConfig, String> {
     if args.layer_seconds.is_some() {
         l0.max_seconds = args.layer_seconds;
     }
+    for (flag, v) in [("--samples", args.samples), ("--seq-len", args.seq_len)] {
+        if v == Some(0) {
+            return Err(format!("{flag} must be at least 1"));
+        }
+    }
+    if args.text.is_none() {
+        let text_only = [
+            ("--samples", args.samples.is_some()),
+            ("--seq-len", args.seq_len.is_some()),
+            ("--seed", args.seed.is_some()),
+            ("--no-propagate", args.no_propagate),
+        ];
+        if let Some((flag, _)) = text_only.iter().find(|f| f.1) {
+            return Err(format!("{flag} applies to text calibration only: add --text FILE"));
+        }
+    }
+    let calibration = match (&args.activations, &args.text) {
+        (Some(a), None) => Calibration::Activations(a.clone()),
+        (None, Some(t)) => Calibration::Text(TextSource {
+            path: t.clone(),
+            samples: args.samples,
+            seq_len: args.seq_len,
+            seed: args.seed.unwrap_or(0),
+            propagate: !args.no_propagate,
+        }),
+        _ => return Err("give exactly one of --activations and --text".into()),
+    };
+    let eval = args.eval_text.as_ref().map(|t| EvalOptions {
+        text: t.clone(),
+        samples: None,
+        seq_len: args.seq_len,
+    });
     Ok(PruneConfig {
         model: args.model.clone(),
-        calibration: Calibration::Activations(args.activations.clone()),
+        calibration,
+        eval,
         output: args.output.clone(),
         report: args.report.clone(),
         trace: args.trace.clone(),

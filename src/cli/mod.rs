@@ -59,6 +59,7 @@ pub fn run() -> i32 {
     let result = match cli.command {
         Command::Inspect(a) => inspect::run(&a),
         Command::Prune(a) => prune(&a),
+        Command::Eval(a) => eval(&a),
     };
     match result {
         Ok(()) => EXIT_OK,
@@ -71,9 +72,7 @@ pub fn run() -> i32 {
 
 fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
     let cfg = config::prune_config(a).map_err(Failure::usage)?;
-    // A second global pool cannot be built; the first one wins, which is fine
-    // for a process that runs one command.
-    let _ = rayon::ThreadPoolBuilder::new().num_threads(cfg.threads).build_global();
+    set_threads(cfg.threads);
     let bar = if a.quiet {
         ProgressBar::hidden()
     } else {
@@ -91,6 +90,10 @@ fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
             bar.set_position(i as u64);
             bar.set_message(name.to_string());
         }
+        Progress::Evaluating => {
+            bar.set_position(bar.length().unwrap_or(0));
+            bar.set_message("comparing with the dense model on --eval-text");
+        }
         Progress::Writing => {
             bar.set_position(bar.length().unwrap_or(0));
             bar.set_message("writing outputs");
@@ -104,6 +107,40 @@ fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
         for o in &report.outputs {
             println!("wrote {o}");
         }
+    }
+    Ok(())
+}
+
+/// Size the global thread pool once per process. The forward passes' matrix
+/// products read the same setting from `RAYON_NUM_THREADS`.
+fn set_threads(n: usize) {
+    std::env::set_var("RAYON_NUM_THREADS", n.to_string());
+    // A second global pool cannot be built; the first one wins, which is fine
+    // for a process that runs one command.
+    let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
+}
+
+fn eval(a: &args::EvalArgs) -> Result<(), Failure> {
+    set_threads(config::resolve_threads(a.threads));
+    for (flag, v) in [("--samples", a.samples), ("--seq-len", a.seq_len)] {
+        if v == Some(0) {
+            return Err(Failure::usage(format!("{flag} must be at least 1")));
+        }
+    }
+    let dense = crate::io::Model::open(&a.dense).map_err(pipeline::Error::from)?;
+    let pruned = crate::io::Model::open(&a.pruned).map_err(pipeline::Error::from)?;
+    let replace = crate::evaluate::pruned_weights(&dense, &pruned)?;
+    let opts = crate::evaluate::EvalOptions {
+        text: a.text.clone(),
+        samples: a.samples,
+        seq_len: a.seq_len,
+    };
+    let summary = crate::evaluate::evaluate(&dense, &replace, &opts)?;
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&summary).expect("serialises"));
+    } else {
+        println!("{}", summary.render());
+        println!("note: {}", crate::report::VALIDATION_NOTICE);
     }
     Ok(())
 }

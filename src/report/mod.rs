@@ -34,8 +34,11 @@ pub struct Settings {
     pub tool_version: String,
     /// Model path as given.
     pub model: String,
-    /// Activations path as given.
-    pub activations: String,
+    /// Activations path as given (`null` for text calibration).
+    pub activations: Option<String>,
+    /// Text calibration: file, windows, seed, propagation (`null` with
+    /// activations).
+    pub text: Option<serde_json::Value>,
     /// Worker threads.
     pub threads: usize,
 }
@@ -109,8 +112,82 @@ pub struct Report {
     pub summary: Summary,
     /// Files written.
     pub outputs: Vec<String>,
+    /// Seconds per phase, for text-calibrated runs.
+    pub timing: Option<PhaseTimes>,
+    /// End-to-end comparison with the dense model, when asked for.
+    pub eval: Option<EvalSummary>,
     /// [`VALIDATION_NOTICE`].
     pub notice: String,
+}
+
+/// Seconds spent in each phase of a text-calibrated run.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize)]
+pub struct PhaseTimes {
+    /// Tokenizing the text and drawing windows.
+    pub tokenize: f64,
+    /// Forward passes through the blocks (collecting and propagating).
+    pub forward: f64,
+    /// Accumulating Gram matrices from the collected inputs.
+    pub gram: f64,
+    /// Solving the layers.
+    pub solve: f64,
+}
+
+/// How far the pruned model's outputs are from the dense model's on text the
+/// pruning never saw.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, serde::Deserialize)]
+pub struct EvalSummary {
+    /// Text file evaluated.
+    pub text: String,
+    /// `encoder` or `decoder`.
+    pub kind: String,
+    /// Inputs evaluated: lines for encoders, windows for decoders.
+    pub inputs: usize,
+    /// Tokens run through each model.
+    pub tokens: usize,
+    /// Encoders: mean cosine similarity of pooled embeddings, pruned vs dense.
+    pub cosine_mean: Option<f64>,
+    /// Encoders: the lowest cosine over the inputs.
+    pub cosine_min: Option<f64>,
+    /// Decoders: perplexity of the dense model.
+    pub perplexity_dense: Option<f64>,
+    /// Decoders: perplexity of the pruned model.
+    pub perplexity_pruned: Option<f64>,
+    /// Decoders: mean KL(dense ‖ pruned) of next-token distributions, nats.
+    pub kl_mean: Option<f64>,
+    /// Both: `Σ‖h − ĥ‖² / Σ‖h‖²` over the final block's output states
+    /// (before pooling or the head), dense `h` against pruned `ĥ`.
+    pub hidden_rel_error: Option<f64>,
+}
+
+impl EvalSummary {
+    /// One line for the terminal.
+    pub fn render(&self) -> String {
+        match (self.cosine_mean, self.perplexity_dense) {
+            (Some(m), _) => format!(
+                "end to end on {} ({} lines, {} tokens): embedding cosine pruned vs dense mean {:.4}, min {:.4}; final states error {}",
+                self.text,
+                self.inputs,
+                self.tokens,
+                m,
+                self.cosine_min.unwrap_or(f64::NAN),
+                fmt_err(self.hidden_rel_error)
+            ),
+            (None, Some(pd)) => {
+                let pp = self.perplexity_pruned.unwrap_or(f64::NAN);
+                format!(
+                    "end to end on {} ({} windows, {} tokens): perplexity dense {pd:.3}, pruned {pp:.3} ({:+.1}%), mean KL {:.4} nats/token; final states error {}",
+                    self.text,
+                    self.inputs,
+                    self.tokens,
+                    100.0 * (pp / pd - 1.0),
+                    self.kl_mean.unwrap_or(f64::NAN),
+                    fmt_err(self.hidden_rel_error)
+                )
+            }
+            _ => format!("end to end on {}: no inputs", self.text),
+        }
+    }
 }
 
 impl Summary {
@@ -204,6 +281,16 @@ impl Report {
             fmt_err(m.mean_rel_error_holdout),
             m.seconds
         );
+        if let Some(t) = &self.timing {
+            let _ = writeln!(
+                out,
+                "time: tokenize {:.2} s, forward {:.2} s, gram {:.2} s, solve {:.2} s",
+                t.tokenize, t.forward, t.gram, t.solve
+            );
+        }
+        if let Some(e) = &self.eval {
+            let _ = writeln!(out, "{}", e.render());
+        }
         let _ = writeln!(out, "note: {}", self.notice);
         out
     }
@@ -263,12 +350,15 @@ mod tests {
                 holdout: 0.1,
                 tool_version: "0".into(),
                 model: "m".into(),
-                activations: "a".into(),
+                activations: Some("a".into()),
+                text: None,
                 threads: 1,
             },
             summary: Summary::of(&layers, 1.0),
             layers,
             outputs: vec![],
+            timing: None,
+            eval: None,
             notice: VALIDATION_NOTICE.into(),
         };
         let v: serde_json::Value = serde_json::from_str(&r.to_json()).unwrap();

