@@ -112,6 +112,9 @@ impl Builder {
     fn bias(&mut self, name: &str, d: usize) {
         self.add(name, &[d], 0.1, 0.0);
     }
+    fn remove(&mut self, name: &str) {
+        self.tensors.retain(|t| t.0 != name);
+    }
     fn get_mut(&mut self, name: &str) -> &mut Vec<f32> {
         &mut self.tensors.iter_mut().find(|t| t.0 == name).unwrap().2
     }
@@ -271,6 +274,10 @@ impl LlamaSpec {
     }
 
     fn write(&self, tag: &str, seed: u64) -> Scratch {
+        self.write_without(tag, seed, None)
+    }
+
+    fn write_without(&self, tag: &str, seed: u64, missing: Option<&str>) -> Scratch {
         let (d, hd) = (self.hidden, self.head_dim.unwrap_or(self.hidden / self.heads));
         let (q, kv) = (self.heads * hd, self.kv_heads * hd);
         let mut b = Builder::new(seed);
@@ -293,6 +300,9 @@ impl LlamaSpec {
         b.gain("model.norm.weight", d);
         if !self.tied {
             b.weight("lm_head.weight", &[self.vocab, d], d);
+        }
+        if let Some(name) = missing {
+            b.remove(name);
         }
         b.write(tag, &self.config())
     }
@@ -421,6 +431,34 @@ fn qwen2_with_qkv_biases_matches_candle_qwen2() {
     );
 }
 
+#[test]
+fn missing_and_misshapen_tensors_are_named_in_one_line() {
+    let spec = LlamaSpec::tiny("llama");
+    let gone = "model.layers.1.post_attention_layernorm.weight";
+    let dir = spec.write_without("fwd-missing", 700, Some(gone));
+    let e = arch::load(&Model::open(&dir.0).unwrap()).err().unwrap().to_string();
+    assert!(e.contains(&format!("missing tensor '{gone}'")) && !e.contains('\n'), "{e}");
+    // The config says 97 intermediate units; the file has 96.
+    let dir = spec.write("fwd-misshapen", 701);
+    let mut cfg = spec.config();
+    cfg["intermediate_size"] = json!(97);
+    std::fs::write(dir.path("config.json"), cfg.to_string()).unwrap();
+    let e = arch::load(&Model::open(&dir.0).unwrap()).err().unwrap().to_string();
+    assert!(e.contains("'model.layers.0.mlp.gate_proj.weight' has shape [96, 64]"), "{e}");
+    assert!(e.contains("[97, 64]") && !e.contains('\n'), "{e}");
+}
+
+#[test]
+fn sequences_beyond_the_sliding_window_are_refused() {
+    let mut spec = LlamaSpec::tiny("mistral");
+    spec.extra = json!({"sliding_window": 8});
+    let dir = spec.write("fwd-window", 800);
+    let (net, _) = open(&dir);
+    assert!(net.forward(&Batch::new(&random_ids(1, 8, spec.vocab, 1))).is_ok());
+    let e = net.forward(&Batch::new(&random_ids(1, 9, spec.vocab, 1))).unwrap_err();
+    assert!(e.to_string().contains("sliding attention window of 8"), "{e}");
+}
+
 // ---------------------------------------------------------------- GPT-2 ----
 
 struct Gpt2Spec {
@@ -497,6 +535,13 @@ fn tr(t: &Tensor) -> Tensor {
     t.t().unwrap().contiguous().unwrap()
 }
 
+/// Rows `[q | k of head 0 | v of head 0]` of a `[3d, ..]` tensor: the
+/// multi-query layout of bigcode's `c_attn`.
+fn mqa_rows(t: &Tensor, d: usize, hd: usize) -> Tensor {
+    let part = |start: usize, len: usize| t.narrow(0, start, len).unwrap();
+    Tensor::cat(&[part(0, d), part(d, hd), part(2 * d, hd)], 0).unwrap()
+}
+
 #[test]
 fn gpt2_matches_candle_bigcode() {
     // Why GPT-BigCode is a GPT-2 reference: it is GPT-2's architecture
@@ -529,12 +574,9 @@ fn gpt2_matches_candle_bigcode() {
         for (name, t) in map {
             let key = format!("transformer.{name}");
             let t = if name.ends_with("c_attn.weight") {
-                let w = tr(t); // [3d, d]: q rows, then k, then v
-                Tensor::cat(&[w.narrow(0, 0, d)?, w.narrow(0, d, hd)?, w.narrow(0, 2 * d, hd)?], 0)
-                    .unwrap()
+                mqa_rows(&tr(t), d, hd)
             } else if name.ends_with("c_attn.bias") {
-                Tensor::cat(&[t.narrow(0, 0, d)?, t.narrow(0, d, hd)?, t.narrow(0, 2 * d, hd)?], 0)
-                    .unwrap()
+                mqa_rows(t, d, hd)
             } else if name.starts_with("h.") && t.rank() == 2 {
                 tr(t)
             } else {
@@ -556,7 +598,7 @@ fn gpt2_matches_candle_bigcode() {
         // Outside reference: candle-transformers 0.11.1 models::bigcode,
         // last-position logits, run on every prefix.
         let mut model = ct::bigcode::GPTBigCode::load(vb(&m), cfg).unwrap();
-        Ok::<_, candle_core::Error>(by_prefixes(&ids, |x| model.forward(x, 0).unwrap()))
+        by_prefixes(&ids, |x| model.forward(x, 0).unwrap())
     };
     compare_family(
         "gpt2 vs bigcode (shared k/v heads, n_inner 48)",
@@ -564,7 +606,7 @@ fn gpt2_matches_candle_bigcode() {
         Family::Gpt2,
         &ids,
         "h.1.mlp.c_fc.weight",
-        |map| reference(map).unwrap(),
+        reference,
     );
 }
 
