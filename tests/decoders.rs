@@ -125,13 +125,25 @@ fn write_gpt2(dir: &Path) {
     for i in 0..LAYERS {
         let p = format!("h.{i}");
         let s = 20 * (i as u64 + 1);
-        for (k, (name, sh)) in
-            [("attn.c_attn", [D, 3 * D]), ("attn.c_proj", [D, D]), ("mlp.c_fc", [D, 4 * D]), ("mlp.c_proj", [4 * D, D])]
-                .iter()
-                .enumerate()
+        for (k, (name, sh)) in [
+            ("attn.c_attn", [D, 3 * D]),
+            ("attn.c_proj", [D, D]),
+            ("mlp.c_fc", [D, 4 * D]),
+            ("mlp.c_proj", [4 * D, D]),
+        ]
+        .iter()
+        .enumerate()
         {
-            t.push(f32s(&format!("{p}.{name}.weight"), sh, &rand(sh[0] * sh[1], 0.3, s + k as u64)));
-            t.push(f32s(&format!("{p}.{name}.bias"), &[sh[1]], &rand(sh[1], 0.05, s + 7 + k as u64)));
+            t.push(f32s(
+                &format!("{p}.{name}.weight"),
+                sh,
+                &rand(sh[0] * sh[1], 0.3, s + k as u64),
+            ));
+            t.push(f32s(
+                &format!("{p}.{name}.bias"),
+                &[sh[1]],
+                &rand(sh[1], 0.05, s + 7 + k as u64),
+            ));
         }
         for ln in ["ln_1", "ln_2"] {
             t.push(f32s(&format!("{p}.{ln}.weight"), &[D], &ones(D)));
@@ -170,13 +182,33 @@ fn setup(tag: &str, write: fn(&Path)) -> Setup {
     let (calib, heldout) = (dir.path("calib.txt"), dir.path("heldout.txt"));
     std::fs::write(&calib, log_text(200, 5)).unwrap();
     std::fs::write(&heldout, log_text(60, 77)).unwrap();
-    Setup { out: dir.path("out"), report: dir.path("report.json"), _dir: dir, model, calib, heldout }
+    Setup {
+        out: dir.path("out"),
+        report: dir.path("report.json"),
+        _dir: dir,
+        model,
+        calib,
+        heldout,
+    }
 }
 
 fn prune(st: &Setup, extra: &[&str]) -> Value {
     let mut args = vec![
-        "prune", s(&st.model), "--text", s(&st.calib), "--samples", "24", "--seq-len", "32",
-        "--eval-text", s(&st.heldout), "-o", s(&st.out), "--report", s(&st.report), "--quiet",
+        "prune",
+        s(&st.model),
+        "--text",
+        s(&st.calib),
+        "--samples",
+        "24",
+        "--seq-len",
+        "32",
+        "--eval-text",
+        s(&st.heldout),
+        "-o",
+        s(&st.out),
+        "--report",
+        s(&st.report),
+        "--quiet",
     ];
     args.extend_from_slice(extra);
     let o = lopper(&args);

@@ -242,6 +242,10 @@ impl Network for Gpt2 {
         Ok(h.broadcast_matmul(&self.wte.t()?)?)
     }
 
+    fn max_positions(&self) -> Option<usize> {
+        Some(self.cfg.positions)
+    }
+
     fn linear(&self, name: &str) -> Option<&Linear> {
         self.linears.get(name)
     }

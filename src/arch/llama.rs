@@ -394,6 +394,12 @@ impl Network for Llama {
         Ok(h.broadcast_matmul(&self.lm_head.t()?)?)
     }
 
+    fn max_positions(&self) -> Option<usize> {
+        // Positions are rotary (no table), but a sliding window limits the
+        // sequences this forward pass can run exactly.
+        self.cfg.window
+    }
+
     fn linear(&self, name: &str) -> Option<&Linear> {
         self.linears.get(name)
     }
