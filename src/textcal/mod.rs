@@ -81,9 +81,10 @@ fn tensor_f64(t: &Tensor) -> Result<Vec<f64>, Error> {
     arch::to_f64_rows(t).map_err(arch_error)
 }
 
-/// Sequences per forward batch: about 16k tokens.
+/// Sequences per forward batch: about 4k tokens, enough rows for efficient
+/// matrix products while one group's inputs stay small.
 fn batch_size(seq_len: usize) -> usize {
-    (16_384 / seq_len.max(1)).max(1)
+    (4096 / seq_len.max(1)).max(1)
 }
 
 /// One selected linear layer of a block.
@@ -236,16 +237,14 @@ pub fn run(
             let mut tap = |g: usize, rows: &Tensor| -> arch::Result<()> {
                 let Some(lg) = grams.get_mut(&g) else { return Ok(()) };
                 let tg = Instant::now();
-                let data = arch::to_f64_rows(rows)?;
                 let d = rows.dim(1)?;
+                let data: Vec<f32> = rows.flatten_all()?.to_vec1()?;
                 let (mut fit, mut held) = (Vec::new(), Vec::new());
                 for (j, seq) in data.chunks(seq_len * d).enumerate() {
-                    if is_holdout(first + j, cfg.holdout) {
-                        held.extend_from_slice(seq);
-                    } else {
-                        fit.extend_from_slice(seq);
-                    }
+                    let to = if is_holdout(first + j, cfg.holdout) { &mut held } else { &mut fit };
+                    to.extend(seq.iter().map(|&v| f64::from(v)));
                 }
+                drop(data);
                 lg.calib.add_rows(&fit, par);
                 lg.holdout.add_rows(&held, par);
                 gram_secs += tg.elapsed().as_secs_f64();
