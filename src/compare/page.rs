@@ -236,6 +236,7 @@ svg text{fill:var(--ink)}
 .worst{margin:8px 0 0;padding-left:18px;columns:2;column-gap:40px;font-size:13px}
 .notes{display:grid;grid-template-columns:190px 1fr;gap:4px 18px;margin:8px 0;font-size:13.5px}
 .notes dt{color:var(--muted)}.notes dd{margin:0;word-break:break-word}
+.sources{width:100%;margin-top:6px}.sources td:nth-child(-n+4){white-space:nowrap}
 .sources td,.sources th,.all td,.all th{padding:3px 9px;border-bottom:1px solid var(--rule);text-align:left;font-size:12.5px}
 .all td.n{text-align:right}
 details{margin-top:30px}summary{cursor:pointer;font-weight:600}
@@ -312,7 +313,14 @@ fn header(h: &mut String, v: &View<'_>, title: &str) {
         v.sources.iter().map(|s| s.comparison.created.as_str()).filter(|d| !d.is_empty()).collect();
     let date = match (dates.iter().min(), dates.iter().max()) {
         (Some(a), Some(b)) if a == b => a.replace('T', " ").replace('Z', " UTC"),
-        (Some(a), Some(b)) => format!("{} … {}", &a[..10.min(a.len())], &b[..10.min(b.len())]),
+        (Some(a), Some(b)) => {
+            let (a, b) = (&a[..10.min(a.len())], &b[..10.min(b.len())]);
+            if a == b {
+                a.to_string()
+            } else {
+                format!("{a} … {b}")
+            }
+        }
         _ => "date unknown".to_string(),
     };
     let versions: Vec<&str> = versions.into_iter().collect();
@@ -383,13 +391,19 @@ fn summary_table(h: &mut String, v: &View<'_>) {
             continue;
         }
         let best = rows.iter().filter_map(|(_, r)| metric.mean(r)).min_by(|a, b| a.total_cmp(b));
-        let mag = rows
-            .iter()
-            .find(|(s, _)| s.method == "magnitude" && s.source == rows[0].0.source)
-            .and_then(|(_, r)| metric.mean(r));
+        // Each run against magnitude from its own report at the same target,
+        // else from any report (same model, same layers).
+        let mag_of = |src: usize| {
+            let mag = |(s, _): &&(&Series, &Run)| s.method == "magnitude";
+            rows.iter()
+                .filter(mag)
+                .find(|(s, _)| s.source == src)
+                .or_else(|| rows.iter().find(mag))
+                .and_then(|(_, r)| metric.mean(r))
+        };
         let _ =
             write!(h, "<tr class=\"group\"><td colspan=\"{cols}\">{}</td></tr>\n", esc(&t.label()));
-        for (s, r) in rows {
+        for &(s, r) in &rows {
             let lead = metric.mean(r);
             let other = match metric {
                 Metric::Holdout => Some(r.summary.mean_rel_error),
@@ -432,7 +446,7 @@ fn summary_table(h: &mut String, v: &View<'_>) {
             };
             h.push_str(&cell(other_field, other, sci(other), "dim"));
             if has_mag {
-                let text = match (mag, lead) {
+                let text = match (mag_of(s.source), lead) {
                     (_, _) if s.method == "magnitude" => "baseline".to_string(),
                     (Some(m), Some(x)) if x > 0.0 && m > 0.0 => {
                         let k = m / x;
@@ -901,6 +915,7 @@ fn per_layer(h: &mut String, v: &View<'_>) {
 
 fn notes(h: &mut String, v: &View<'_>) {
     h.push_str("<h2>Notes</h2><dl class=\"notes\">");
+    let mut sources_table = None;
     let dd = |h: &mut String, k: &str, val: String| {
         let _ = write!(h, "<dt>{}</dt><dd>{val}</dd>", esc(k));
     };
@@ -958,7 +973,7 @@ fn notes(h: &mut String, v: &View<'_>) {
         }
     } else {
         let mut t = String::from(
-            "<table class=\"sources\"><tr><th>report</th><th>file</th><th>date</th><th>lopper</th>\
+            "<table class=\"sources\" data-table=\"sources\"><tr><th>report</th><th>file</th><th>date</th><th>lopper</th>\
              <th>calibration</th><th>ridge</th><th>runs</th></tr>",
         );
         for s in v.sources {
@@ -981,7 +996,8 @@ fn notes(h: &mut String, v: &View<'_>) {
             );
         }
         t.push_str("</table>");
-        dd(h, "sources", t);
+        dd(h, "sources", format!("{} reports, listed below", v.sources.len()));
+        sources_table = Some(t);
     }
     dd(
         h,
@@ -992,6 +1008,9 @@ fn notes(h: &mut String, v: &View<'_>) {
             .into(),
     );
     h.push_str("</dl>\n");
+    if let Some(t) = sources_table {
+        h.push_str(&t);
+    }
 }
 
 /// `22,713,216`.

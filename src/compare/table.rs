@@ -34,17 +34,25 @@ pub fn render(sources: &[Source]) -> String {
             t
         }
     };
-    let mut cols: Vec<String> = Vec::new();
+    // Unstructured targets by sparsity, then patterns as they come.
+    let mut keyed: Vec<(Option<f64>, String)> = Vec::new();
     let mut rows: Vec<(usize, String)> = Vec::new();
     for (i, r) in &runs {
         let c = col(r);
-        if !cols.contains(&c) {
-            cols.push(c);
+        if !keyed.iter().any(|(_, k)| k == &c) {
+            keyed.push((r.sparsity, c));
         }
         if !rows.contains(&(*i, r.method.clone())) {
             rows.push((*i, r.method.clone()));
         }
     }
+    keyed.sort_by(|a, b| match (a.0, b.0) {
+        (Some(x), Some(y)) => x.total_cmp(&y),
+        (Some(_), None) => std::cmp::Ordering::Less,
+        (None, Some(_)) => std::cmp::Ordering::Greater,
+        (None, None) => std::cmp::Ordering::Equal,
+    });
+    let cols: Vec<String> = keyed.into_iter().map(|(_, c)| c).collect();
     let label = |(i, m): &(usize, String)| {
         if sources.len() > 1 {
             format!("{m} ({})", sources[*i].label)
@@ -71,7 +79,7 @@ pub fn render(sources: &[Source]) -> String {
     );
     let mut head = format!("{:<wl$}", "method");
     for c in &cols {
-        let _ = write!(head, "  {c:>wc$}");
+        let _ = write!(head, "  {c:>w$} ", w = wc - 1);
     }
     let _ = write!(head, "  {:>9}", "solve s");
     let _ = writeln!(out, "{head}");
@@ -86,11 +94,11 @@ pub fn render(sources: &[Source]) -> String {
                     secs += r.summary.seconds;
                     let m = mean(r);
                     let star = if m.is_some() && m == best[ci] { "*" } else { " " };
-                    format!("{}{star}", sci(m))
+                    format!("{:>w$}{star}", sci(m), w = wc - 1)
                 }
-                None => "  ".to_string(),
+                None => " ".repeat(wc),
             };
-            let _ = write!(line, "  {cell:>wc$}");
+            let _ = write!(line, "  {cell}");
         }
         let _ = write!(line, "  {secs:>9.2}");
         let _ = writeln!(out, "{line}");
