@@ -5,6 +5,17 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ignore numpy safetensors onnxruntime tokenizers
 bash scripts/fetch-test-model.sh
+# Headless Chromium renders the comparison page in tests/compare.rs
+# (scripts/check-report-page.sh). Debian's package; skipped when present.
+if ! command -v chromium >/dev/null 2>&1 && ! command -v chromium-browser >/dev/null 2>&1; then
+  if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
+    echo "installing chromium (apt-get)"
+    apt-get update -qq
+    DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null
+  else
+    echo "chromium is missing and cannot be installed here: run 'apt-get install -y chromium' as root" >&2
+  fi
+fi
 export LOPPER_TEST_MODEL="${LOPPER_TEST_MODEL:-${LOPPER_CACHE:-$HOME/.cache/lopper}/all-minilm-l6-v2}"
 cargo fmt --check
 log=$(mktemp)

@@ -43,6 +43,7 @@
 pub mod arch;
 pub mod calib;
 pub mod cli;
+pub mod compare;
 pub mod evaluate;
 pub mod io;
 pub mod pipeline;

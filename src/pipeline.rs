@@ -159,9 +159,9 @@ pub enum Progress<'a> {
 }
 
 /// One selected layer and its validated activation tensor.
-struct Job<'a> {
-    weight: &'a TensorInfo,
-    rows: usize,
+pub(crate) struct Job<'a> {
+    pub(crate) weight: &'a TensorInfo,
+    pub(crate) rows: usize,
 }
 
 pub(crate) fn pattern_label(p: Pattern) -> (Option<f64>, Option<String>, &'static str) {
@@ -217,7 +217,7 @@ fn check_outputs(cfg: &PruneConfig, model: &Model) -> Result<(), Error> {
 }
 
 /// Check every selected layer against its activation tensor.
-fn plan<'a>(
+pub(crate) fn plan<'a>(
     cfg: &PruneConfig,
     model: &'a Model,
     acts: &TensorFile,
@@ -338,7 +338,7 @@ pub(crate) fn check_memory(
 }
 
 /// Rows per chunk when streaming activations (about 32 MiB of f64).
-fn chunk_rows(width: usize) -> usize {
+pub(crate) fn chunk_rows(width: usize) -> usize {
     ((4 << 20) / width.max(1)).max(1)
 }
 

@@ -264,3 +264,72 @@ fn l0_beats_the_obs_sweep_on_every_layer() {
         assert!(held_l0 < held_obs, "{target:?}: held-out l0 {held_l0} not below obs {held_obs}");
     }
 }
+
+/// `lopper compare` on the real encoder (five layers of one block, 50% and
+/// 70% per row):
+/// the ordering the solver issues measured holds here too, magnitude worst
+/// and the local search lowest on calibration error at every target, and
+/// the page carries one chart per kind.
+#[test]
+fn compare_orders_the_methods_on_minilm() {
+    let Some(src) = model_dir() else { return };
+    let dir = Scratch::new("real-compare");
+    let v = inspect(&src);
+    let acts = activations(&dir, &v, 600, f32s);
+    let out = dir.path("cmp");
+    let o = lopper(&[
+        "compare",
+        src.to_str().unwrap(),
+        "--activations",
+        acts.to_str().unwrap(),
+        "--sparsities",
+        "0.5,0.7",
+        // One block's 384-wide layers (the 1536-wide output.dense would take
+        // most of the time).
+        "--only",
+        "encoder.layer.4.attention.*",
+        "--only",
+        "encoder.layer.4.intermediate.*",
+        // A fixed ridge: auto would try five, and CI time is short.
+        "--ridge",
+        "0.01",
+        "--out-dir",
+        out.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let c = report(&out.join("comparison.json"));
+    assert_eq!(c["status"], "complete");
+    assert_eq!(c["layers"].as_array().unwrap().len(), 5);
+    let runs = c["runs"].as_array().unwrap();
+    assert_eq!(runs.len(), 8);
+    for t in ["0.5", "0.7"] {
+        let at: Vec<&serde_json::Value> = runs.iter().filter(|r| r["target"] == t).collect();
+        let get = |m: &str, f: &str| {
+            at.iter().find(|r| r["method"] == m).unwrap()["summary"][f].as_f64().unwrap()
+        };
+        let line: Vec<String> = ["magnitude", "scaled", "obs", "l0"]
+            .iter()
+            .map(|m| {
+                format!(
+                    "{m} {:.3e}/{:.3e} ({:.1} s)",
+                    get(m, "mean_rel_error"),
+                    get(m, "mean_rel_error_holdout"),
+                    get(m, "seconds")
+                )
+            })
+            .collect();
+        println!("{t}: calibration/held-out {}", line.join(", "));
+        for m in ["scaled", "obs", "l0"] {
+            for f in ["mean_rel_error", "mean_rel_error_holdout"] {
+                assert!(get(m, f) < get("magnitude", f), "{t} {m} {f} not below magnitude");
+            }
+        }
+        for m in ["magnitude", "scaled", "obs"] {
+            assert!(get("l0", "mean_rel_error") < get(m, "mean_rel_error"), "{t}: l0 vs {m}");
+        }
+    }
+    let html = std::fs::read_to_string(out.join("comparison.html")).unwrap();
+    assert_eq!(html.matches("class=\"lopper-chart\"").count(), 2, "curves and layers");
+    assert!(html.contains("data-chart=\"layers\" data-target=\"0.7\""));
+}

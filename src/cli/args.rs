@@ -24,6 +24,12 @@ pub enum Command {
     Prune(Box<PruneArgs>),
     /// Compare a pruned model's outputs with its dense original on text.
     Eval(EvalArgs),
+    /// Run several methods at several sparsities on the same calibration
+    /// data and write comparison.json and comparison.html.
+    Compare(Box<CompareArgs>),
+    /// Put saved reports (prune --report files, comparison.json) side by
+    /// side on one page.
+    Report(ReportArgs),
 }
 
 /// `lopper eval`.
@@ -174,6 +180,109 @@ pub struct PruneArgs {
     /// Worker threads (0 = all cores).
     #[arg(long, value_name = "N", default_value_t = 0)]
     pub threads: usize,
+    /// Print nothing but errors.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// `lopper compare`.
+#[derive(Debug, Args)]
+#[command(group(ArgGroup::new("calibration").required(true).args(["activations", "text"])))]
+pub struct CompareArgs {
+    /// A .safetensors file, a *.safetensors.index.json, or a model directory.
+    pub model: PathBuf,
+    /// Safetensors file of calibration inputs: per pruned layer, a tensor
+    /// named like its weight, shape [rows, d_in]. Read once for all runs.
+    #[arg(long, value_name = "FILE")]
+    pub activations: Option<PathBuf>,
+    /// UTF-8 text to calibrate on through the model itself (not available
+    /// in compare yet).
+    #[arg(long, value_name = "FILE")]
+    pub text: Option<PathBuf>,
+    /// Text calibration: token windows drawn from the text [default: 128]
+    #[arg(long, value_name = "N")]
+    pub samples: Option<usize>,
+    /// Text calibration: tokens per window [default: 128 for encoders, 256
+    /// for decoders]
+    #[arg(long, value_name = "L")]
+    pub seq_len: Option<usize>,
+    /// Text calibration: seed for drawing the windows [default: 0]
+    #[arg(long, value_name = "SEED")]
+    pub seed: Option<u64>,
+    /// Text calibration: dense inputs for every block (the runs then share
+    /// the same calibration inputs).
+    #[arg(long)]
+    pub no_propagate: bool,
+    /// Unstructured targets, fractions of zeros in [0, 1), comma-separated
+    /// [default: 0.5,0.7,0.9 when --patterns is not given either]
+    #[arg(long, value_name = "S,S,...", value_delimiter = ',', allow_negative_numbers = true)]
+    pub sparsities: Vec<f64>,
+    /// N:M pattern targets, comma-separated (e.g. 2:4,4:8).
+    #[arg(long, value_name = "N:M,...", value_delimiter = ',')]
+    pub patterns: Vec<String>,
+    /// Where the --sparsities budgets apply.
+    #[arg(long, value_enum, default_value = "row")]
+    pub scope: ScopeArg,
+    /// Methods to run, comma-separated.
+    #[arg(long, value_enum, value_delimiter = ',', default_value = "magnitude,scaled,obs,l0")]
+    pub methods: Vec<MethodArg>,
+    /// Folder for comparison.json, comparison.html and, with --keep-models,
+    /// models/<method>-<target>/.
+    #[arg(long, value_name = "DIR")]
+    pub out_dir: PathBuf,
+    /// Also write every run's pruned model under DIR/models/.
+    #[arg(long)]
+    pub keep_models: bool,
+    /// Target for the per-layer chart (one of the sparsities or patterns)
+    /// [default: the highest sparsity, else the first pattern]
+    #[arg(long, value_name = "S|N:M")]
+    pub focus: Option<String>,
+    /// Held-out text for end-to-end figures (not available in compare yet).
+    #[arg(long, value_name = "FILE")]
+    pub eval_text: Option<PathBuf>,
+    /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto` (per layer and run, the α
+    /// in {0.01, 0.03, 0.1, 0.3, 1} with the lowest held-out error)
+    /// [default: auto, or 0.01 for a layer without held-out rows]
+    #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
+    pub ridge: Option<String>,
+    /// Fraction of activation rows held out from the solvers, in [0, 1).
+    #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]
+    pub holdout: f64,
+    /// Prune only 2-D float tensors matching GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub only: Vec<String>,
+    /// Do not prune tensors matching GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub skip: Vec<String>,
+    /// Local search: most swap sweeps per layer [default: 20]
+    #[arg(long, value_name = "N")]
+    pub max_sweeps: Option<usize>,
+    /// Local search: most seconds per layer, checked between sweeps
+    /// [default: no limit]
+    #[arg(long, value_name = "SECS")]
+    pub layer_seconds: Option<f64>,
+    /// Worker threads (0 = all cores).
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub threads: usize,
+    /// Print nothing but errors (no progress bar, no table).
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// `lopper report`.
+#[derive(Debug, Args)]
+pub struct ReportArgs {
+    /// JSON reports: files written by `lopper prune --report` and/or
+    /// comparison.json files, all of the same model.
+    #[arg(required = true, value_name = "REPORT")]
+    pub reports: Vec<PathBuf>,
+    /// The HTML page to write.
+    #[arg(short = 'o', long = "output", value_name = "PAGE")]
+    pub output: PathBuf,
+    /// Target for the per-layer chart (a sparsity such as 0.7, or N:M)
+    /// [default: the highest sparsity, else the first pattern]
+    #[arg(long, value_name = "S|N:M")]
+    pub focus: Option<String>,
     /// Print nothing but errors.
     #[arg(long, short = 'q')]
     pub quiet: bool,

@@ -1,9 +1,11 @@
 //! The command-line front end: flags → config → pipeline, then printing.
 //!
-//! Exit codes: 0 success, 2 usage or input error, 1 anything else. Errors are
+//! Exit codes: 0 success, 2 usage or input error, 1 anything else, 130 when
+//! `lopper compare` was interrupted (what finished is kept). Errors are
 //! printed as one line, `lopper: error: …`, on stderr.
 
 mod args;
+mod compare;
 mod config;
 mod inspect;
 
@@ -18,6 +20,8 @@ pub const EXIT_OK: i32 = 0;
 pub const EXIT_FAILURE: i32 = 1;
 /// Exit code for usage and input errors.
 pub const EXIT_USAGE: i32 = 2;
+/// Exit code after Ctrl-C (128 + SIGINT, the shell's convention).
+pub const EXIT_INTERRUPTED: i32 = 130;
 
 /// A front-end failure with its exit code.
 struct Failure {
@@ -48,10 +52,17 @@ pub fn run() -> i32 {
             return EXIT_OK;
         }
         Err(e) => {
-            // Clap's message is several lines (usage, tips); keep the first.
+            // Clap's message is several lines (usage, tips); keep the first,
+            // with the indented list it introduces (missing arguments).
             let text = e.render().to_string();
-            let first = text.lines().next().unwrap_or("invalid arguments");
-            let first = first.strip_prefix("error: ").unwrap_or(first);
+            let mut lines = text.lines().filter(|l| !l.trim().is_empty());
+            let first = lines.next().unwrap_or("invalid arguments");
+            let mut first = first.strip_prefix("error: ").unwrap_or(first).to_string();
+            if first.ends_with(':') {
+                let items: Vec<&str> =
+                    lines.take_while(|l| l.starts_with(' ')).map(str::trim).collect();
+                first = format!("{first} {}", items.join(", "));
+            }
             eprintln!("lopper: error: {first} (see `lopper --help`)");
             return EXIT_USAGE;
         }
@@ -60,6 +71,8 @@ pub fn run() -> i32 {
         Command::Inspect(a) => inspect::run(&a),
         Command::Prune(a) => prune(&a),
         Command::Eval(a) => eval(&a),
+        Command::Compare(a) => compare::compare(&a),
+        Command::Report(a) => compare::report(&a),
     };
     match result {
         Ok(()) => EXIT_OK,

@@ -7,7 +7,7 @@
 //! order they were pruned (sorted by tensor name), so the same inputs give
 //! the same report apart from timings.
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use std::fmt::Write as _;
 
 /// A reminder that calibration error is not model quality.
@@ -16,7 +16,7 @@ pub const VALIDATION_NOTICE: &str =
 a pruned model can get worse: validate it on your own evaluation data before deploying.";
 
 /// How the run was set up.
-#[derive(Clone, Debug, Serialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 pub struct Settings {
     /// Solver name (`magnitude`, `scaled`, `obs`, `l0`).
     pub method: String,
@@ -44,7 +44,7 @@ pub struct Settings {
 }
 
 /// One pruned layer.
-#[derive(Clone, Debug, Serialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 pub struct LayerReport {
     /// Tensor name.
     pub name: String,
@@ -83,7 +83,7 @@ pub struct LayerReport {
 }
 
 /// Totals over the pruned layers.
-#[derive(Clone, Debug, Serialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 pub struct Summary {
     /// Pruned layers.
     pub layers: usize,
@@ -102,7 +102,7 @@ pub struct Summary {
 }
 
 /// The whole report.
-#[derive(Clone, Debug, Serialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 pub struct Report {
     /// Run settings.
     pub settings: Settings,
@@ -121,7 +121,7 @@ pub struct Report {
 }
 
 /// Seconds spent in each phase of a text-calibrated run.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct PhaseTimes {
     /// Tokenizing the text and drawing windows.
     pub tokenize: f64,
@@ -135,7 +135,7 @@ pub struct PhaseTimes {
 
 /// How far the pruned model's outputs are from the dense model's on text the
 /// pruning never saw.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, serde::Deserialize)]
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct EvalSummary {
     /// Text file evaluated.
     pub text: String,

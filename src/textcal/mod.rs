@@ -145,6 +145,16 @@ fn plan(cfg: &PruneConfig, model: &Model, net: &dyn Network) -> Result<Vec<Vec<P
     Ok(blocks)
 }
 
+/// Check what [`run`] would prune, without running anything: the number of
+/// selected layers.
+///
+/// # Errors
+/// As [`run`] before its first forward pass.
+pub fn count_layers(cfg: &PruneConfig, model: &Model) -> Result<usize, Error> {
+    let net = arch::load(model).map_err(arch_error)?;
+    Ok(plan(cfg, model, net.as_ref())?.iter().map(Vec::len).sum())
+}
+
 /// Tokenize the calibration text and cut it into windows.
 ///
 /// Returns the windows (each exactly `seq_len` ids, framing included) and

@@ -1,0 +1,1072 @@
+//! The comparison page: one self-contained HTML file (inline CSS and SVG,
+//! one tiny inline script, no network, no fonts) drawn from one or more
+//! [`Source`]s.
+//!
+//! Sections, top to bottom: title and provenance, the validation caution,
+//! the summary table (target × method), error against sparsity (one line per
+//! series, with N:M patterns in a side panel on the same y axis), errors per
+//! layer at the focus target, notes (calibration, settings, sources, how to
+//! read), and every figure in a collapsed table.
+//!
+//! A *series* is one method from one source; it keeps the method's colour
+//! and marker (Okabe & Ito 2008 palette, so colour-blind readers can tell
+//! them apart, and a distinct marker shape so print and greyscale still
+//! work). Series from a second or third source differ by dash and hollow
+//! markers.
+//!
+//! Every figure drawn or printed carries its exact value in `data-value`
+//! (with `data-source`, `data-run`, `data-field` and, per layer,
+//! `data-layer`), so a test can check the page against the JSON. Charts are
+//! `<svg class="lopper-chart" data-chart="…">`; after layout, the inline
+//! script records how many have a non-empty box in `body[data-rendered-charts]`.
+
+use super::data::{target_display, Run, Source, Status, INPUTS_SHARED};
+use super::svg::{decade_label, esc, exact, marker, sci, LinScale, LogScale, Shape};
+use std::collections::BTreeSet;
+use std::fmt::Write as _;
+
+/// Colour and marker of a known method (Okabe–Ito colours).
+fn method_style(method: &str) -> Option<(&'static str, Shape)> {
+    match method {
+        "magnitude" => Some(("#D55E00", Shape::Square)),
+        "scaled" => Some(("#E69F00", Shape::Triangle)),
+        "obs" => Some(("#009E73", Shape::Diamond)),
+        "l0" => Some(("#0072B2", Shape::Circle)),
+        _ => None,
+    }
+}
+
+/// Styles for methods this page does not know (rest of the palette).
+const EXTRA: [(&str, Shape); 3] =
+    [("#CC79A7", Shape::TriangleDown), ("#56B4E9", Shape::Circle), ("#000000", Shape::Square)];
+
+/// Dash patterns by source index.
+const DASHES: [&str; 4] = ["", "7 4", "2 3", "9 3 2 3"];
+
+/// One method from one source.
+struct Series {
+    source: usize,
+    method: String,
+    label: String,
+    colour: &'static str,
+    shape: Shape,
+    filled: bool,
+    dash: &'static str,
+}
+
+/// Which error the charts and the summary lead with.
+#[derive(Clone, Copy, PartialEq)]
+enum Metric {
+    Holdout,
+    Calibration,
+}
+
+impl Metric {
+    fn field(self) -> &'static str {
+        match self {
+            Metric::Holdout => "mean_rel_error_holdout",
+            Metric::Calibration => "mean_rel_error",
+        }
+    }
+    fn words(self) -> &'static str {
+        match self {
+            Metric::Holdout => "held-out",
+            Metric::Calibration => "calibration",
+        }
+    }
+    fn mean(self, r: &Run) -> Option<f64> {
+        match self {
+            Metric::Holdout => r.summary.mean_rel_error_holdout,
+            Metric::Calibration => Some(r.summary.mean_rel_error),
+        }
+        .filter(|_| !r.layers.is_empty())
+    }
+    fn layer(self, l: &crate::report::LayerReport) -> Option<f64> {
+        match self {
+            Metric::Holdout => l.rel_error_holdout,
+            Metric::Calibration => Some(l.rel_error),
+        }
+    }
+}
+
+/// A target column: key, scope, and how it reads.
+#[derive(Clone, Debug, PartialEq)]
+struct Target {
+    key: String,
+    scope: String,
+    sparsity: Option<f64>,
+}
+
+impl Target {
+    fn of(r: &Run) -> Self {
+        Target { key: r.target.clone(), scope: r.scope.clone(), sparsity: r.sparsity }
+    }
+    fn label(&self) -> String {
+        let base = target_display(&self.key);
+        if self.scope == "layer" {
+            format!("{base} per layer")
+        } else {
+            base
+        }
+    }
+    fn matches(&self, r: &Run) -> bool {
+        r.target == self.key && r.scope == self.scope
+    }
+}
+
+/// Everything the sections share.
+struct View<'a> {
+    sources: &'a [Source],
+    series: Vec<Series>,
+    targets: Vec<Target>,
+    metric: Metric,
+    focus: Option<Target>,
+}
+
+impl<'a> View<'a> {
+    fn new(sources: &'a [Source], focus: Option<&str>) -> Self {
+        let mut series = Vec::new();
+        let mut extra = 0;
+        let mut seen = BTreeSet::new();
+        for (si, s) in sources.iter().enumerate() {
+            for r in &s.comparison.runs {
+                if !seen.insert((si, r.method.clone())) {
+                    continue;
+                }
+                let (colour, shape) = method_style(&r.method).unwrap_or_else(|| {
+                    extra += 1;
+                    EXTRA[(extra - 1) % EXTRA.len()]
+                });
+                let shared = sources.iter().enumerate().any(|(j, o)| {
+                    j != si && o.comparison.runs.iter().any(|q| q.method == r.method)
+                });
+                let label =
+                    if shared { format!("{} · {}", r.method, s.label) } else { r.method.clone() };
+                series.push(Series {
+                    source: si,
+                    method: r.method.clone(),
+                    label,
+                    colour,
+                    shape,
+                    filled: si == 0,
+                    dash: DASHES[si % DASHES.len()],
+                });
+            }
+        }
+        let mut targets: Vec<Target> = Vec::new();
+        for s in sources {
+            for r in &s.comparison.runs {
+                let t = Target::of(r);
+                if !targets.contains(&t) {
+                    targets.push(t);
+                }
+            }
+        }
+        // Unstructured by sparsity, then patterns in order of appearance.
+        targets.sort_by(|a, b| match (a.sparsity, b.sparsity) {
+            (Some(x), Some(y)) => x.total_cmp(&y).then(a.scope.cmp(&b.scope)),
+            (Some(_), None) => std::cmp::Ordering::Less,
+            (None, Some(_)) => std::cmp::Ordering::Greater,
+            (None, None) => std::cmp::Ordering::Equal,
+        });
+        let all_held = sources
+            .iter()
+            .flat_map(|s| &s.comparison.runs)
+            .all(|r| r.layers.is_empty() || r.summary.mean_rel_error_holdout.is_some());
+        let metric = if all_held { Metric::Holdout } else { Metric::Calibration };
+        let focus = focus
+            .and_then(|k| targets.iter().find(|t| t.key == k).cloned())
+            .or_else(|| targets.iter().rev().find(|t| t.sparsity.is_some()).cloned())
+            .or_else(|| targets.first().cloned());
+        View { sources, series, targets, metric, focus }
+    }
+
+    fn run(&self, s: &Series, t: &Target) -> Option<&'a Run> {
+        self.sources[s.source].comparison.runs.iter().find(|r| r.method == s.method && t.matches(r))
+    }
+
+    fn layer_count(&self) -> usize {
+        self.sources.first().map(|s| s.comparison.layers.len()).unwrap_or(0)
+    }
+}
+
+/// The target keys present in `sources` (for validating `--focus`).
+pub fn targets_of(sources: &[Source]) -> Vec<String> {
+    let mut v: Vec<String> = Vec::new();
+    for s in sources {
+        for r in &s.comparison.runs {
+            if !v.contains(&r.target) {
+                v.push(r.target.clone());
+            }
+        }
+    }
+    v
+}
+
+const STYLE: &str = r#"
+:root{--ink:#1d232b;--muted:#5c6570;--rule:#dde1e6;--soft:#f4f6f8;--warm:#fff7e6}
+*{box-sizing:border-box}
+body{margin:0;background:#fff;color:var(--ink);font:14px/1.45 system-ui,-apple-system,"Segoe UI",Roboto,"Noto Sans","DejaVu Sans","Liberation Sans",sans-serif}
+main{max-width:1180px;margin:0 auto;padding:26px 30px 56px}
+header{display:flex;justify-content:space-between;align-items:flex-end;gap:24px;border-bottom:3px solid var(--ink);padding-bottom:12px}
+.kicker{font-size:12px;letter-spacing:.09em;text-transform:uppercase;color:var(--muted);margin:0}
+h1{font-size:27px;line-height:1.2;margin:4px 0 2px;font-weight:700;word-break:break-all}
+h2{font-size:17px;margin:34px 0 4px}
+.lede{color:var(--muted);margin:0 0 12px;max-width:900px}
+.meta{color:var(--muted);font-size:13px;text-align:right;white-space:nowrap}
+.status{display:inline-block;padding:2px 8px;border-radius:3px;font-size:12px;font-weight:600}
+.status.ok{background:#e3f1ec;color:#00573f}.status.partial{background:#fde8dc;color:#8a3200}
+.caution{border-left:4px solid #E69F00;background:var(--warm);padding:10px 14px;margin:18px 0 6px;max-width:980px}
+table{border-collapse:collapse;font-variant-numeric:tabular-nums}
+.summary{width:100%}
+.summary th{font-size:12px;font-weight:600;color:var(--muted);text-align:right;padding:6px 10px;border-bottom:2px solid var(--ink);vertical-align:bottom}
+.summary td{padding:5px 10px;text-align:right;border-bottom:1px solid var(--rule)}
+.summary th:first-child,.summary td:first-child{text-align:left}
+.summary td.m{padding-left:26px}
+.summary tr.group td{background:var(--soft);font-weight:700;text-align:left;border-bottom:1px solid var(--rule);padding-top:9px}
+.summary tr.best td.err{font-weight:700}
+.tag{display:inline-block;margin-left:6px;padding:0 5px;border:1px solid currentColor;border-radius:3px;font-size:10px;font-weight:600;letter-spacing:.04em;color:#00573f;vertical-align:1px}
+.swatch{display:inline-block;vertical-align:-3px;margin-right:7px}
+.dim{color:var(--muted)}
+.charts{display:flex;gap:22px;align-items:flex-start;flex-wrap:wrap}
+figure{margin:10px 0 0}
+figcaption{font-size:12.5px;color:var(--muted);margin-top:2px;max-width:1100px}
+svg.lopper-chart{display:block;height:auto;max-width:100%;font-size:12px}
+svg text{fill:var(--ink)}
+.worst{margin:8px 0 0;padding-left:18px;columns:2;column-gap:40px;font-size:13px}
+.notes{display:grid;grid-template-columns:190px 1fr;gap:4px 18px;margin:8px 0;font-size:13.5px}
+.notes dt{color:var(--muted)}.notes dd{margin:0;word-break:break-word}
+.sources{width:100%;margin-top:6px}.sources td:nth-child(-n+4){white-space:nowrap}
+.sources td,.sources th,.all td,.all th{padding:3px 9px;border-bottom:1px solid var(--rule);text-align:left;font-size:12.5px}
+.all td.n{text-align:right}
+details{margin-top:30px}summary{cursor:pointer;font-weight:600}
+code{font-size:12.5px}
+"#;
+
+/// Render the page for `sources` (already checked compatible), with the
+/// per-layer chart at `focus` (a target key) or at the default target.
+pub fn render(sources: &[Source], focus: Option<&str>) -> String {
+    let v = View::new(sources, focus);
+    let mut h = String::with_capacity(64 << 10);
+    let title = sources
+        .first()
+        .map(|s| super::data::display_name(&s.comparison.model))
+        .unwrap_or_else(|| "lopper".to_string());
+    let _ = write!(
+        h,
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">\
+         <meta name=\"viewport\" content=\"width=device-width,initial-scale=1\">\
+         <title>{} · lopper comparison</title><style>{STYLE}</style></head>\n<body>\n<main>\n",
+        esc(&title)
+    );
+    header(&mut h, &v, &title);
+    summary_table(&mut h, &v);
+    curves(&mut h, &v);
+    per_layer(&mut h, &v);
+    notes(&mut h, &v);
+    all_figures(&mut h, &v);
+    h.push_str(
+        "</main>\n<script>addEventListener('load',function(){var n=0;\
+         document.querySelectorAll('svg.lopper-chart').forEach(function(s){\
+         var r=s.getBoundingClientRect();if(r.width>0&&r.height>0)n++});\
+         var b=document.body;b.setAttribute('data-rendered-charts',String(n));\
+         b.setAttribute('data-page-height',String(document.documentElement.scrollHeight))});\
+         </script>\n\
+         </body></html>\n",
+    );
+    h
+}
+
+fn header(h: &mut String, v: &View<'_>, title: &str) {
+    let first = &v.sources[0].comparison;
+    let complete = v.sources.iter().all(|s| s.comparison.status == Status::Complete);
+    let status = if complete {
+        "<span class=\"status ok\">complete</span>".to_string()
+    } else {
+        let why: Vec<String> = v
+            .sources
+            .iter()
+            .filter(|s| s.comparison.status != Status::Complete)
+            .map(|s| {
+                let c = &s.comparison;
+                let what = match c.status {
+                    Status::Interrupted => "interrupted".to_string(),
+                    Status::Running => "still running".to_string(),
+                    Status::Failed => {
+                        format!("failed: {}", c.status_detail.clone().unwrap_or_default())
+                    }
+                    Status::Complete => unreachable!(),
+                };
+                if v.sources.len() > 1 {
+                    format!("{} {what}", s.label)
+                } else {
+                    what
+                }
+            })
+            .collect();
+        format!("<span class=\"status partial\">incomplete — {}</span>", esc(&why.join("; ")))
+    };
+    let runs: usize = v.sources.iter().map(|s| s.comparison.runs.len()).sum();
+    let versions: BTreeSet<&str> =
+        v.sources.iter().map(|s| s.comparison.tool_version.as_str()).collect();
+    let dates: Vec<&str> =
+        v.sources.iter().map(|s| s.comparison.created.as_str()).filter(|d| !d.is_empty()).collect();
+    let date = match (dates.iter().min(), dates.iter().max()) {
+        (Some(a), Some(b)) if a == b => a.replace('T', " ").replace('Z', " UTC"),
+        (Some(a), Some(b)) => {
+            let (a, b) = (&a[..10.min(a.len())], &b[..10.min(b.len())]);
+            if a == b {
+                a.to_string()
+            } else {
+                format!("{a} … {b}")
+            }
+        }
+        _ => "date unknown".to_string(),
+    };
+    let versions: Vec<&str> = versions.into_iter().collect();
+    let _ = write!(
+        h,
+        "<header><div><p class=\"kicker\">lopper · pruning methods side by side</p>\
+         <h1>{}</h1><div>{status}</div></div>\
+         <div class=\"meta\">{} layers · {runs} runs{}<br>lopper {} · {}</div></header>\n",
+        esc(title),
+        v.layer_count(),
+        if v.sources.len() > 1 {
+            format!(" from {} reports", v.sources.len())
+        } else {
+            String::new()
+        },
+        esc(&versions.join(", ")),
+        esc(&date),
+    );
+    let _ = write!(
+        h,
+        "<p class=\"caution\" data-notice><strong>Caution.</strong> {}</p>\n",
+        esc(&first.notice)
+    );
+}
+
+fn swatch(s: &Series) -> String {
+    let mut m = String::new();
+    let dash =
+        if s.dash.is_empty() { String::new() } else { format!(" stroke-dasharray=\"{}\"", s.dash) };
+    let _ = write!(
+        m,
+        "<svg class=\"swatch\" width=\"30\" height=\"14\" aria-hidden=\"true\">\
+         <line x1=\"1\" y1=\"7\" x2=\"29\" y2=\"7\" stroke=\"{}\" stroke-width=\"2\"{dash}/>",
+        s.colour
+    );
+    marker(&mut m, s.shape, 15.0, 7.0, 4.5, s.colour, s.filled, "", None);
+    m.push_str("</svg>");
+    m
+}
+
+fn summary_table(h: &mut String, v: &View<'_>) {
+    let metric = v.metric;
+    let has_mag = v.series.iter().any(|s| s.method == "magnitude");
+    let _ = write!(
+        h,
+        "<h2>Summary</h2><p class=\"lede\">Mean {} relative error over the pruned layers \
+         (lower is better; the lowest per target is marked), with the time the solver took. \
+         End-to-end figures appear once the model is evaluated on held-out text.</p>\n",
+        metric.words()
+    );
+    h.push_str("<table class=\"summary\" data-table=\"summary\"><thead><tr><th>target, method</th><th>zeros</th>");
+    let _ = write!(
+        h,
+        "<th>mean {} error</th><th>mean {} error</th>",
+        metric.words(),
+        if metric == Metric::Holdout { "calibration" } else { "held-out" }
+    );
+    if has_mag {
+        h.push_str("<th>vs magnitude</th>");
+    }
+    h.push_str("<th>end-to-end</th><th>speed</th><th>solve time</th></tr></thead><tbody>\n");
+    let cols = if has_mag { 8 } else { 7 };
+    let n_layers = v.layer_count();
+    for t in &v.targets {
+        let rows: Vec<(&Series, &Run)> =
+            v.series.iter().filter_map(|s| v.run(s, t).map(|r| (s, r))).collect();
+        if rows.is_empty() {
+            continue;
+        }
+        let best = rows.iter().filter_map(|(_, r)| metric.mean(r)).min_by(|a, b| a.total_cmp(b));
+        // Each run against magnitude from its own report at the same target,
+        // else from any report (same model, same layers).
+        let mag_of = |src: usize| {
+            let mag = |(s, _): &&(&Series, &Run)| s.method == "magnitude";
+            rows.iter()
+                .filter(mag)
+                .find(|(s, _)| s.source == src)
+                .or_else(|| rows.iter().find(mag))
+                .and_then(|(_, r)| metric.mean(r))
+        };
+        let _ =
+            write!(h, "<tr class=\"group\"><td colspan=\"{cols}\">{}</td></tr>\n", esc(&t.label()));
+        for &(s, r) in &rows {
+            let lead = metric.mean(r);
+            let other = match metric {
+                Metric::Holdout => Some(r.summary.mean_rel_error),
+                Metric::Calibration => r.summary.mean_rel_error_holdout,
+            }
+            .filter(|_| !r.layers.is_empty());
+            let is_best = lead.is_some() && lead == best;
+            let src = s.source;
+            let id = esc(&r.id);
+            let cell = |field: &str, val: Option<f64>, text: String, class: &str| {
+                format!(
+                    "<td class=\"{class}\" data-field=\"{field}\" data-value=\"{}\">{text}</td>",
+                    exact(val)
+                )
+            };
+            let partial = if r.layers.len() < n_layers {
+                format!(" <span class=\"dim\">({} of {n_layers} layers)</span>", r.layers.len())
+            } else {
+                String::new()
+            };
+            let _ = write!(
+                h,
+                "<tr{} data-source=\"{src}\" data-run=\"{id}\"><td class=\"m\">{}{}{partial}</td>",
+                if is_best { " class=\"best\"" } else { "" },
+                swatch(s),
+                esc(&s.label)
+            );
+            let zeros = (!r.layers.is_empty()).then_some(r.summary.sparsity);
+            h.push_str(&cell(
+                "sparsity",
+                zeros,
+                zeros.map(|z| format!("{}%", percent_2(z))).unwrap_or("—".into()),
+                "",
+            ));
+            let tag = if is_best { "<span class=\"tag\">LOWEST</span>" } else { "" };
+            h.push_str(&cell(metric.field(), lead, format!("{}{tag}", sci(lead)), "err"));
+            let other_field = match metric {
+                Metric::Holdout => "mean_rel_error",
+                Metric::Calibration => "mean_rel_error_holdout",
+            };
+            h.push_str(&cell(other_field, other, sci(other), "dim"));
+            if has_mag {
+                let text = match (mag_of(s.source), lead) {
+                    (_, _) if s.method == "magnitude" => "baseline".to_string(),
+                    (Some(m), Some(x)) if x > 0.0 && m > 0.0 => {
+                        let k = m / x;
+                        if k >= 1.0 {
+                            format!("{} × lower", fmt_factor(k))
+                        } else {
+                            format!("{} × higher", fmt_factor(1.0 / k))
+                        }
+                    }
+                    _ => "—".to_string(),
+                };
+                let _ = write!(h, "<td>{text}</td>");
+            }
+            match &r.end_to_end {
+                Some(e) => {
+                    let _ = write!(
+                        h,
+                        "<td data-field=\"end_to_end\" data-value=\"{}\">{:.4} <span class=\"dim\">{}</span></td>",
+                        exact(Some(e.value)),
+                        e.value,
+                        esc(&e.metric)
+                    );
+                }
+                None => h.push_str("<td data-field=\"end_to_end\" data-value=\"\">—</td>"),
+            }
+            match &r.speed {
+                Some(sp) if sp.sparse_seconds > 0.0 => {
+                    let k = sp.dense_seconds / sp.sparse_seconds;
+                    let _ = write!(
+                        h,
+                        "<td data-field=\"speedup\" data-value=\"{}\">{k:.2}× <span class=\"dim\">batch {}</span></td>",
+                        exact(Some(k)),
+                        sp.batch
+                    );
+                }
+                _ => h.push_str("<td data-field=\"speedup\" data-value=\"\">—</td>"),
+            }
+            let secs = Some(r.summary.seconds);
+            h.push_str(&cell("seconds", secs, format!("{:.2} s", r.summary.seconds), ""));
+            h.push_str("</tr>\n");
+        }
+    }
+    h.push_str("</tbody></table>\n");
+    let gram: f64 = v
+        .sources
+        .iter()
+        .filter(|s| s.comparison.runs.iter().any(|r| r.calibration_inputs == INPUTS_SHARED))
+        .flat_map(|s| s.comparison.layers.iter().map(|l| l.gram_seconds))
+        .sum();
+    if gram > 0.0 {
+        let _ = write!(
+            h,
+            "<p class=\"lede\" style=\"margin-top:6px;font-size:12.5px\">Solve time excludes \
+             reading the calibration inputs and building each layer's Gram matrices, done once \
+             for all runs that share them: {gram:.2} s.</p>\n"
+        );
+    }
+}
+
+/// Achieved sparsity in percent with two decimals.
+fn percent_2(z: f64) -> String {
+    format!("{:.2}", 100.0 * z)
+}
+
+/// A ratio for people: `3.4`, `27`, `1,240`.
+fn fmt_factor(k: f64) -> String {
+    if k < 10.0 {
+        format!("{k:.1}")
+    } else if k < 1000.0 {
+        format!("{k:.0}")
+    } else {
+        let s = format!("{k:.0}");
+        let mut out = String::new();
+        for (i, c) in s.chars().enumerate() {
+            if i > 0 && (s.len() - i) % 3 == 0 {
+                out.push(',');
+            }
+            out.push(c);
+        }
+        out
+    }
+}
+
+/// Legend row across the top of a chart.
+fn legend(out: &mut String, series: &[&Series], x0: f64, y: f64, width: f64) {
+    let mut x = x0;
+    let mut y = y;
+    for s in series {
+        let w = 44.0 + 7.2 * s.label.chars().count() as f64;
+        if x + w > x0 + width && x > x0 {
+            x = x0;
+            y += 18.0;
+        }
+        let dash = if s.dash.is_empty() {
+            String::new()
+        } else {
+            format!(" stroke-dasharray=\"{}\"", s.dash)
+        };
+        let _ = write!(
+            out,
+            "<g class=\"legend-item\"><line x1=\"{x:.1}\" y1=\"{y:.1}\" x2=\"{:.1}\" y2=\"{y:.1}\" \
+             stroke=\"{}\" stroke-width=\"2\"{dash}/>",
+            x + 26.0,
+            s.colour
+        );
+        marker(out, s.shape, x + 13.0, y, 4.5, s.colour, s.filled, "", None);
+        let _ = write!(
+            out,
+            "<text x=\"{:.1}\" y=\"{:.1}\">{}</text></g>",
+            x + 32.0,
+            y + 4.0,
+            esc(&s.label)
+        );
+        x += w;
+    }
+}
+
+/// Horizontal log-scale gridlines and labels on the left of a plot.
+fn y_log_axis(out: &mut String, ys: &LogScale, x0: f64, x1: f64) {
+    for m in ys.minors() {
+        let y = ys.px(m);
+        let _ = write!(
+            out,
+            "<line x1=\"{x0}\" x2=\"{x1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#f0f2f4\"/>"
+        );
+    }
+    for e in ys.decades() {
+        let y = ys.px(10f64.powi(e));
+        let _ = write!(
+            out,
+            "<line x1=\"{x0}\" x2=\"{x1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#d5dae0\"/>\
+             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"end\">{}</text>",
+            x0 - 8.0,
+            y + 4.0,
+            decade_label(e)
+        );
+    }
+}
+
+fn curves(h: &mut String, v: &View<'_>) {
+    let metric = v.metric;
+    let unstructured: Vec<&Target> = v.targets.iter().filter(|t| t.sparsity.is_some()).collect();
+    let patterns: Vec<&Target> = v.targets.iter().filter(|t| t.sparsity.is_none()).collect();
+    let mut values = Vec::new();
+    for s in &v.series {
+        for t in &v.targets {
+            if let Some(x) = v.run(s, t).and_then(|r| metric.mean(r)) {
+                values.push(x);
+            }
+        }
+    }
+    if values.is_empty() {
+        return;
+    }
+    let _ = write!(
+        h,
+        "<h2>Error against sparsity</h2><p class=\"lede\">Each point is one run: the mean {} \
+         relative error of its layers. Lines join a method's unstructured targets{}.</p>\
+         <div class=\"charts\">\n",
+        metric.words(),
+        if patterns.is_empty() {
+            ""
+        } else {
+            "; N:M patterns sit in the panel on the right, on the same scale"
+        }
+    );
+    let (height, top, bottom) = (420.0, 58.0, 56.0);
+    let ys = LogScale::covering(values.iter().copied(), height - bottom, top);
+    let ylabel = format!("mean {} relative error", metric.words());
+    let series: Vec<&Series> = v.series.iter().collect();
+    if !unstructured.is_empty() {
+        let width = if patterns.is_empty() { 820.0 } else { 720.0 };
+        let (left, right) = (78.0, 18.0);
+        let sp: Vec<f64> =
+            unstructured.iter().filter_map(|t| t.sparsity).map(|s| 100.0 * s).collect();
+        let (lo, hi) = (
+            sp.iter().cloned().fold(f64::INFINITY, f64::min),
+            sp.iter().cloned().fold(0.0, f64::max),
+        );
+        let (d0, d1) = (((lo - 5.0) / 10.0).floor() * 10.0, ((hi + 5.0) / 10.0).ceil() * 10.0);
+        let (d0, d1) = (d0.max(0.0), d1.min(100.0).max(d0 + 10.0));
+        let xs = LinScale { d0, d1, p0: left, p1: width - right };
+        let _ = write!(
+            h,
+            "<figure><svg class=\"lopper-chart\" data-chart=\"curves\" viewBox=\"0 0 {width} {height}\" \
+             width=\"{width}\" height=\"{height}\" role=\"img\" aria-label=\"{} against sparsity, per method\">",
+            esc(&ylabel)
+        );
+        legend(h, &series, left, 20.0, width - left - right);
+        y_log_axis(h, &ys, left, width - right);
+        let mut tick = d0;
+        while tick <= d1 + 1e-9 {
+            let x = xs.px(tick);
+            let _ = write!(
+                h,
+                "<line x1=\"{x:.1}\" x2=\"{x:.1}\" y1=\"{top}\" y2=\"{:.1}\" stroke=\"#f0f2f4\"/>\
+                 <text x=\"{x:.1}\" y=\"{:.1}\" text-anchor=\"middle\">{tick:.0}</text>",
+                height - bottom,
+                height - bottom + 18.0
+            );
+            tick += 10.0;
+        }
+        let _ = write!(
+            h,
+            "<rect x=\"{left}\" y=\"{top}\" width=\"{:.1}\" height=\"{:.1}\" fill=\"none\" stroke=\"#9aa3ad\"/>\
+             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"600\">sparsity (%)</text>\
+             <text transform=\"translate(18 {:.1}) rotate(-90)\" text-anchor=\"middle\" font-weight=\"600\">{} (log scale)</text>",
+            width - left - right,
+            height - top - bottom,
+            (left + width - right) / 2.0,
+            height - 12.0,
+            (top + height - bottom) / 2.0,
+            esc(&ylabel)
+        );
+        for s in &v.series {
+            let pts: Vec<(f64, f64, &Run)> = unstructured
+                .iter()
+                .filter_map(|t| v.run(s, t))
+                .filter_map(|r| Some((100.0 * r.sparsity?, metric.mean(r)?, r)))
+                .collect();
+            if pts.len() > 1 {
+                let path: Vec<String> = pts
+                    .iter()
+                    .map(|(x, y, _)| format!("{:.1},{:.1}", xs.px(*x), ys.px(*y)))
+                    .collect();
+                let dash = if s.dash.is_empty() {
+                    String::new()
+                } else {
+                    format!(" stroke-dasharray=\"{}\"", s.dash)
+                };
+                let _ = write!(
+                    h,
+                    "<polyline points=\"{}\" fill=\"none\" stroke=\"{}\" stroke-width=\"2.2\" stroke-linejoin=\"round\"{dash}/>",
+                    path.join(" "),
+                    s.colour
+                );
+            }
+            for (x, y, r) in pts {
+                let attrs = format!(
+                    "class=\"pt\" data-source=\"{}\" data-run=\"{}\" data-field=\"{}\" data-value=\"{}\"",
+                    s.source,
+                    esc(&r.id),
+                    metric.field(),
+                    exact(Some(y))
+                );
+                let title =
+                    format!("{} at {}: {}", s.label, target_display(&r.target), sci(Some(y)));
+                marker(
+                    h,
+                    s.shape,
+                    xs.px(x),
+                    ys.px(y),
+                    5.5,
+                    s.colour,
+                    s.filled,
+                    &attrs,
+                    Some(&title),
+                );
+            }
+        }
+        h.push_str("</svg></figure>\n");
+    }
+    if !patterns.is_empty() {
+        let width = if unstructured.is_empty() { 560.0 } else { 370.0 };
+        let (left, right) = (78.0, 14.0);
+        let _ = write!(
+            h,
+            "<figure><svg class=\"lopper-chart\" data-chart=\"patterns\" viewBox=\"0 0 {width} {height}\" \
+             width=\"{width}\" height=\"{height}\" role=\"img\" aria-label=\"{} for N:M patterns, per method\">",
+            esc(&ylabel)
+        );
+        if unstructured.is_empty() {
+            legend(h, &series, left, 20.0, width - left - right);
+        } else {
+            let _ =
+                write!(h, "<text x=\"{left}\" y=\"24\" font-weight=\"600\">N:M patterns</text>");
+        }
+        y_log_axis(h, &ys, left, width - right);
+        let band = (width - left - right) / patterns.len() as f64;
+        let n = v.series.len().max(1) as f64;
+        for (i, t) in patterns.iter().enumerate() {
+            let cx = left + band * (i as f64 + 0.5);
+            let _ = write!(
+                h,
+                "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\">{}</text>",
+                height - bottom + 18.0,
+                esc(&t.key)
+            );
+            for (k, s) in v.series.iter().enumerate() {
+                let Some(r) = v.run(s, t) else { continue };
+                let Some(y) = metric.mean(r) else { continue };
+                let step = (band * 0.6 / n).min(16.0);
+                let x = cx + (k as f64 - (n - 1.0) / 2.0) * step;
+                let attrs = format!(
+                    "class=\"pt\" data-source=\"{}\" data-run=\"{}\" data-field=\"{}\" data-value=\"{}\"",
+                    s.source,
+                    esc(&r.id),
+                    metric.field(),
+                    exact(Some(y))
+                );
+                let title = format!("{} at {}: {}", s.label, t.key, sci(Some(y)));
+                marker(h, s.shape, x, ys.px(y), 5.5, s.colour, s.filled, &attrs, Some(&title));
+            }
+        }
+        let _ = write!(
+            h,
+            "<rect x=\"{left}\" y=\"{top}\" width=\"{:.1}\" height=\"{:.1}\" fill=\"none\" stroke=\"#9aa3ad\"/>\
+             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"600\">pattern (N kept of every M)</text>\
+             <text transform=\"translate(18 {:.1}) rotate(-90)\" text-anchor=\"middle\" font-weight=\"600\">{} (log scale)</text>",
+            width - left - right,
+            height - top - bottom,
+            (left + width - right) / 2.0,
+            height - 12.0,
+            (top + height - bottom) / 2.0,
+            esc(&ylabel)
+        );
+        h.push_str("</svg></figure>\n");
+    }
+    h.push_str("</div>\n");
+}
+
+fn per_layer(h: &mut String, v: &View<'_>) {
+    let Some(t) = &v.focus else { return };
+    let metric = v.metric;
+    let runs: Vec<(&Series, &Run)> =
+        v.series.iter().filter_map(|s| v.run(s, t).map(|r| (s, r))).collect();
+    let layers = &v.sources[0].comparison.layers;
+    if runs.is_empty() || layers.is_empty() {
+        return;
+    }
+    let values: Vec<f64> =
+        runs.iter().flat_map(|(_, r)| r.layers.iter().filter_map(|l| metric.layer(l))).collect();
+    let _ = write!(
+        h,
+        "<h2>Per layer at {}</h2><p class=\"lede\">The {} relative error of every layer, one \
+         marker per method; layers further right lose more of their output. Rows follow the \
+         model's layer order.</p>\n",
+        esc(&t.label()),
+        metric.words()
+    );
+    let longest = layers.iter().map(|l| l.name.chars().count()).max().unwrap_or(10) as f64;
+    let left = (longest * 6.4 + 20.0).clamp(120.0, 420.0);
+    // Taller rows when there are few layers, denser when there are many.
+    let row = match layers.len() {
+        0..=8 => 28.0,
+        9..=48 => 18.0,
+        _ => 15.0,
+    };
+    let (width, right, top) = (1120.0, 24.0, 58.0);
+    let height = top + row * layers.len() as f64 + 54.0;
+    let xs = LogScale::covering(values.iter().copied(), left, width - right);
+    let bottom = top + row * layers.len() as f64;
+    let _ = write!(
+        h,
+        "<figure><svg class=\"lopper-chart\" data-chart=\"layers\" data-target=\"{}\" \
+         viewBox=\"0 0 {width} {height:.0}\" width=\"{width}\" height=\"{height:.0}\" role=\"img\" \
+         aria-label=\"{} relative error per layer at {}\">",
+        esc(&t.key),
+        metric.words(),
+        esc(&t.label())
+    );
+    let series: Vec<&Series> = runs.iter().map(|(s, _)| *s).collect();
+    legend(h, &series, left, 20.0, width - left - right);
+    for (i, l) in layers.iter().enumerate() {
+        let y = top + row * i as f64;
+        if i % 2 == 0 {
+            let _ = write!(
+                h,
+                "<rect x=\"0\" y=\"{y:.1}\" width=\"{:.1}\" height=\"{row}\" fill=\"#f6f8fa\"/>",
+                width - right
+            );
+        }
+        let _ = write!(
+            h,
+            "<text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"end\" font-size=\"11\">{}</text>",
+            left - 8.0,
+            y + row / 2.0 + 4.0,
+            esc(&l.name)
+        );
+    }
+    for m in xs.minors() {
+        let x = xs.px(m);
+        let _ = write!(h, "<line x1=\"{x:.1}\" x2=\"{x:.1}\" y1=\"{top}\" y2=\"{bottom:.1}\" stroke=\"#eceff2\"/>");
+    }
+    for e in xs.decades() {
+        let x = xs.px(10f64.powi(e));
+        let _ = write!(
+            h,
+            "<line x1=\"{x:.1}\" x2=\"{x:.1}\" y1=\"{top}\" y2=\"{bottom:.1}\" stroke=\"#c9d0d7\"/>\
+             <text x=\"{x:.1}\" y=\"{:.1}\" text-anchor=\"middle\">{}</text>",
+            bottom + 18.0,
+            decade_label(e)
+        );
+    }
+    let _ = write!(
+        h,
+        "<rect x=\"{left}\" y=\"{top}\" width=\"{:.1}\" height=\"{:.1}\" fill=\"none\" stroke=\"#9aa3ad\"/>\
+         <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"600\">{} relative error of the layer (log scale)</text>",
+        width - left - right,
+        bottom - top,
+        (left + width - right) / 2.0,
+        bottom + 42.0,
+        metric.words()
+    );
+    // Range line per layer, then markers.
+    for (i, l) in layers.iter().enumerate() {
+        let y = top + row * i as f64 + row / 2.0;
+        let xs_row: Vec<f64> = runs
+            .iter()
+            .filter_map(|(_, r)| r.layers.iter().find(|q| q.name == l.name))
+            .filter_map(|q| metric.layer(q))
+            .map(|e| xs.px(e))
+            .collect();
+        if xs_row.len() > 1 {
+            let (a, b) = (
+                xs_row.iter().cloned().fold(f64::INFINITY, f64::min),
+                xs_row.iter().cloned().fold(f64::NEG_INFINITY, f64::max),
+            );
+            let _ = write!(h, "<line x1=\"{a:.1}\" x2=\"{b:.1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#aab2bb\" stroke-width=\"1.2\"/>");
+        }
+    }
+    for (s, r) in &runs {
+        for (i, l) in layers.iter().enumerate() {
+            let Some(q) = r.layers.iter().find(|q| q.name == l.name) else { continue };
+            let Some(e) = metric.layer(q) else { continue };
+            let y = top + row * i as f64 + row / 2.0;
+            let attrs = format!(
+                "class=\"pt\" data-source=\"{}\" data-run=\"{}\" data-layer=\"{}\" data-field=\"{}\" data-value=\"{}\"",
+                s.source,
+                esc(&r.id),
+                esc(&l.name),
+                match metric {
+                    Metric::Holdout => "rel_error_holdout",
+                    Metric::Calibration => "rel_error",
+                },
+                exact(Some(e))
+            );
+            let title = format!("{} · {}: {}", s.label, l.name, sci(Some(e)));
+            marker(h, s.shape, xs.px(e), y, 4.6, s.colour, s.filled, &attrs, Some(&title));
+        }
+    }
+    h.push_str("</svg>");
+    // The layers that suffer most, per series.
+    h.push_str(
+        "<figcaption>Layers that lose the most, per method:</figcaption><ul class=\"worst\">",
+    );
+    for (s, r) in &runs {
+        let mut ls: Vec<(&str, f64)> =
+            r.layers.iter().filter_map(|q| metric.layer(q).map(|e| (q.name.as_str(), e))).collect();
+        ls.sort_by(|a, b| b.1.total_cmp(&a.1));
+        let top: Vec<String> = ls
+            .iter()
+            .take(3)
+            .map(|(n, e)| format!("<code>{}</code> {}", esc(n), sci(Some(*e))))
+            .collect();
+        let _ = write!(
+            h,
+            "<li>{}<strong>{}</strong>: {}</li>",
+            swatch(s),
+            esc(&s.label),
+            top.join(", ")
+        );
+    }
+    h.push_str("</ul></figure>\n");
+}
+
+fn notes(h: &mut String, v: &View<'_>) {
+    h.push_str("<h2>Notes</h2><dl class=\"notes\">");
+    let mut sources_table = None;
+    let dd = |h: &mut String, k: &str, val: String| {
+        let _ = write!(h, "<dt>{}</dt><dd>{val}</dd>", esc(k));
+    };
+    let first = &v.sources[0].comparison;
+    dd(h, "model", format!("<code>{}</code>", esc(&first.model)));
+    let weights: usize = first.layers.iter().map(|l| l.shape[0] * l.shape[1]).sum();
+    dd(
+        h,
+        "layers",
+        format!("{} linear layers, {} weights", first.layers.len(), fmt_count(weights)),
+    );
+    if v.sources.len() == 1 {
+        let c = first;
+        dd(h, "calibration", esc(&c.calibration.description));
+        let mut kinds: Vec<String> = Vec::new();
+        for r in &c.runs {
+            if !kinds.contains(&r.calibration_inputs) {
+                kinds.push(r.calibration_inputs.clone());
+            }
+        }
+        let inputs = if kinds.len() == 1 && kinds[0] == INPUTS_SHARED {
+            "shared: every run was solved on the same Gram matrices, built once per layer".into()
+        } else {
+            c.runs
+                .iter()
+                .map(|r| format!("{} {}", esc(&r.id), esc(&r.calibration_inputs)))
+                .collect::<Vec<_>>()
+                .join(", ")
+        };
+        dd(h, "calibration inputs", inputs);
+        let s = &c.settings;
+        let ridge = match &s.ridge {
+            serde_json::Value::String(r) => r.clone(),
+            other => other.to_string(),
+        };
+        let mut set = format!(
+            "scope {} · ridge {} · held-out fraction {} · local search up to {} sweeps{} · {} threads",
+            esc(&s.scope),
+            esc(&ridge),
+            c.calibration.holdout,
+            s.max_sweeps,
+            s.layer_seconds.map(|t| format!(" and {t} s per layer")).unwrap_or_default(),
+            s.threads
+        );
+        if !s.only.is_empty() {
+            let _ = write!(set, " · only {}", esc(&s.only.join(", ")));
+        }
+        if !s.skip.is_empty() {
+            let _ = write!(set, " · skip {}", esc(&s.skip.join(", ")));
+        }
+        dd(h, "settings", set);
+        dd(h, "tool", format!("lopper {} · started {}", esc(&c.tool_version), esc(&c.created)));
+        if let Some(e) = &s.eval_text {
+            dd(h, "evaluation text", format!("<code>{}</code>", esc(e)));
+        }
+    } else {
+        let mut t = String::from(
+            "<table class=\"sources\" data-table=\"sources\"><tr><th>report</th><th>file</th><th>date</th><th>lopper</th>\
+             <th>calibration</th><th>ridge</th><th>runs</th></tr>",
+        );
+        for s in v.sources {
+            let c = &s.comparison;
+            let ridge = match &c.settings.ridge {
+                serde_json::Value::String(r) => r.clone(),
+                other => other.to_string(),
+            };
+            let ids: Vec<&str> = c.runs.iter().map(|r| r.id.as_str()).collect();
+            let _ = write!(
+                t,
+                "<tr><td>{}</td><td><code>{}</code></td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                esc(&s.label),
+                esc(s.path.as_deref().unwrap_or("")),
+                esc(&c.created),
+                esc(&c.tool_version),
+                esc(&c.calibration.description),
+                esc(&ridge),
+                esc(&ids.join(", "))
+            );
+        }
+        t.push_str("</table>");
+        dd(h, "sources", format!("{} reports, listed below", v.sources.len()));
+        sources_table = Some(t);
+    }
+    dd(
+        h,
+        "how to read",
+        "relative error of a layer = ‖XWᵀ − XŴᵀ‖² / ‖XWᵀ‖² over its calibration inputs X, \
+         dense W against pruned Ŵ; <em>held-out</em> rows were never shown to the solvers, so a \
+         gap between calibration and held-out error is overfitting. Means are over layers."
+            .into(),
+    );
+    h.push_str("</dl>\n");
+    if let Some(t) = sources_table {
+        h.push_str(&t);
+    }
+}
+
+/// `22,713,216`.
+fn fmt_count(n: usize) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
+fn all_figures(h: &mut String, v: &View<'_>) {
+    h.push_str(
+        "<details><summary>Every figure, per run and layer</summary>\
+         <table class=\"all\" data-table=\"layers\"><thead><tr><th>run</th><th>layer</th>\
+         <th>zeros</th><th>calibration error</th><th>held-out error</th><th>ridge α</th>\
+         <th>sweeps</th><th>swaps</th><th>solve s</th></tr></thead><tbody>\n",
+    );
+    for (si, s) in v.sources.iter().enumerate() {
+        for r in &s.comparison.runs {
+            let name =
+                if v.sources.len() > 1 { format!("{} · {}", s.label, r.id) } else { r.id.clone() };
+            for l in &r.layers {
+                let cell = |field: &str, val: f64, text: String| {
+                    format!(
+                        "<td class=\"n\" data-field=\"{field}\" data-value=\"{}\">{text}</td>",
+                        exact(Some(val))
+                    )
+                };
+                let _ = write!(
+                    h,
+                    "<tr data-source=\"{si}\" data-run=\"{}\" data-layer=\"{}\"><td>{}</td><td><code>{}</code></td>",
+                    esc(&r.id),
+                    esc(&l.name),
+                    esc(&name),
+                    esc(&l.name)
+                );
+                h.push_str(&cell("sparsity", l.sparsity, format!("{}%", percent_2(l.sparsity))));
+                h.push_str(&cell("rel_error", l.rel_error, sci(Some(l.rel_error))));
+                let _ = write!(
+                    h,
+                    "<td class=\"n\" data-field=\"rel_error_holdout\" data-value=\"{}\">{}</td>",
+                    exact(l.rel_error_holdout),
+                    sci(l.rel_error_holdout)
+                );
+                h.push_str(&cell("ridge_alpha", l.ridge_alpha, format!("{}", l.ridge_alpha)));
+                h.push_str(&cell("sweeps", l.sweeps as f64, l.sweeps.to_string()));
+                h.push_str(&cell("swaps", l.swaps as f64, l.swaps.to_string()));
+                h.push_str(&cell("seconds", l.seconds, format!("{:.3}", l.seconds)));
+                h.push_str("</tr>\n");
+            }
+        }
+    }
+    h.push_str("</tbody></table></details>\n");
+}
