@@ -48,4 +48,5 @@ pub mod pipeline;
 pub mod report;
 pub mod select;
 pub mod solve;
+pub mod sparse;
 pub mod textcal;
