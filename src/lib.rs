@@ -43,6 +43,7 @@
 pub mod arch;
 pub mod calib;
 pub mod cli;
+pub mod deploy;
 pub mod io;
 pub mod pipeline;
 pub mod report;

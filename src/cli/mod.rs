@@ -6,6 +6,7 @@
 mod args;
 mod config;
 mod inspect;
+mod sparse;
 
 use crate::pipeline::{self, ErrorKind, Progress};
 use args::{Cli, Command};
@@ -59,6 +60,8 @@ pub fn run() -> i32 {
     let result = match cli.command {
         Command::Inspect(a) => inspect::run(&a),
         Command::Prune(a) => prune(&a),
+        Command::Speed(a) => sparse::speed(&a),
+        Command::Pack(a) => sparse::pack(&a),
     };
     match result {
         Ok(()) => EXIT_OK,

@@ -37,6 +37,8 @@ pub fn dense_matmul_workspace(_d_out: usize, _d_in: usize, _b: usize) -> usize {
 ///
 /// # Panics
 /// If a slice's length does not match the shapes.
+// The arguments mirror the product's parts one to one.
+#[allow(clippy::too_many_arguments)]
 #[track_caller]
 pub fn dense_matmul(
     w: &[f32],

@@ -258,7 +258,7 @@ impl GroupPacked {
         check_shapes(self.d_out, self.d_in, x, b, y);
         assert!(work.len() >= self.matmul_workspace(b), "workspace too small");
         let g = Geometry { groups: self.groups, n: self.n, m: self.m };
-        let cost = |r: usize| r;
+        let cost = |r: usize| r * g.groups * g.n;
         let (v, p) = (&self.values[..], &self.positions[..]);
         if b == 1 {
             for_row_blocks(y, self.d_out, 1, par, cost, |rows, out| {

@@ -257,8 +257,14 @@ pub(crate) fn balanced_ranges(
     out
 }
 
+/// Multiply-adds per thread below which a product runs on one thread:
+/// handing work to another thread costs a few microseconds. Zero in unit
+/// tests, so that small shapes exercise the parallel path.
+const MIN_PARALLEL_WORK: usize = if cfg!(test) { 0 } else { 1 << 15 };
+
 /// Run `f` on each block of rows of `out` (`rows` rows of `width` values,
-/// row-major), in parallel under `par`, with about equal cost per block.
+/// row-major), in parallel under `par`, with about equal cost per block;
+/// `cost_before(r) · width` estimates the multiply-adds of rows `0..r`.
 pub(crate) fn for_row_blocks(
     out: &mut [f32],
     rows: usize,
@@ -269,7 +275,10 @@ pub(crate) fn for_row_blocks(
 ) {
     debug_assert_eq!(out.len(), rows * width);
     let threads = par.degree();
-    if threads <= 1 || rows < 2 {
+    if threads <= 1
+        || rows < 2
+        || cost_before(rows).saturating_mul(width) < threads * MIN_PARALLEL_WORK
+    {
         f(0..rows, out);
         return;
     }
