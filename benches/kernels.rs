@@ -18,8 +18,8 @@
 //!   streaming read of a buffer of the same size, repeated.
 
 use std::hint::black_box;
-use std::time::Instant;
 
+use lopper::deploy::median_seconds as time;
 use lopper::sparse::{dense_matmul, DenseKernel, GroupPacked, Par, RowCompressed};
 
 /// Layer shapes `[d_out, d_in]`: a 4096-wide projection as in 7B-parameter
@@ -91,30 +91,6 @@ fn pruned_weight(d_out: usize, d_in: usize, pattern: Pattern, rng: &mut Rng) -> 
         }
     }
     w
-}
-
-/// Median seconds per call of `f(i)` (`i` counts calls): one warm-up call,
-/// then samples of enough calls to last about 2 ms, until `min_time` has
-/// passed and at least 7 samples are in.
-fn time(min_time: f64, mut f: impl FnMut(usize)) -> f64 {
-    let mut i = 0;
-    let t = Instant::now();
-    f(i);
-    i += 1;
-    let once = t.elapsed().as_secs_f64().max(1e-7);
-    let reps = ((2e-3 / once).ceil() as usize).clamp(1, 10_000);
-    let mut samples = Vec::new();
-    let start = Instant::now();
-    while samples.len() < 7 || (start.elapsed().as_secs_f64() < min_time && samples.len() < 1000) {
-        let t = Instant::now();
-        for _ in 0..reps {
-            f(i);
-            i += 1;
-        }
-        samples.push(t.elapsed().as_secs_f64() / reps as f64);
-    }
-    samples.sort_by(f64::total_cmp);
-    samples[samples.len() / 2]
 }
 
 /// Sum of `v` with 32 independent partial sums.

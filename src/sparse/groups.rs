@@ -12,8 +12,8 @@
 use std::ops::Range;
 
 use super::{
-    check_shapes, for_row_blocks, madd, multiversion, padded_batch, transpose, Par, SparseError,
-    SparseErrorKind as K,
+    batch_tile, check_shapes, for_row_blocks, madd, multiversion, padded_batch, tile_inputs,
+    transpose, Par, SparseError, SparseErrorKind as K, CHUNK_VALUES,
 };
 
 /// Widest group supported (positions are 4 bits).
@@ -270,19 +270,19 @@ impl GroupPacked {
             });
             return;
         }
-        if b == 0 {
+        if b == 0 || self.d_in == 0 {
+            y.fill(0.0);
             return;
         }
         let bp = padded_batch(b);
         let (xt, rest) = work.split_at_mut(bp * self.d_in);
         let yt = &mut rest[..bp * self.d_out];
-        xt.fill(0.0);
-        transpose(x, b, self.d_in, self.d_in, xt, bp);
+        tile_inputs(x, b, self.d_in, xt);
         let xt = &*xt;
-        for_row_blocks(yt, self.d_out, bp, par, cost, |rows, out| match (bp % 32, bp % 16) {
-            (0, _) => groups_batch_32(rows, g, v, p, xt, bp, out),
-            (_, 0) => groups_batch_16(rows, g, v, p, xt, bp, out),
-            _ => groups_batch_8(rows, g, v, p, xt, bp, out),
+        let d_in = self.d_in;
+        for_row_blocks(yt, self.d_out, bp, par, cost, |rows, out| match batch_tile(b) {
+            8 => groups_batch_8(rows, g, v, p, xt, d_in, out),
+            _ => groups_batch_16(rows, g, v, p, xt, d_in, out),
         });
         transpose(yt, self.d_out, b, bp, y, self.d_out);
     }
@@ -363,7 +363,8 @@ fn groups_vec_pairs_body<const FMA: bool>(
     }
 }
 
-/// Batch `b > 1` on `xᵀ` (`[d_in, bp]`), tiles of `T` batch columns.
+/// Batch `b > 1` on tiled inputs `xt` (`[tiles][d_in][T]`): as the
+/// compressed-row kernel, with column `g·m + p` for each slot.
 #[inline(always)]
 fn groups_batch_body<const FMA: bool, const T: usize>(
     rows: Range<usize>,
@@ -371,29 +372,35 @@ fn groups_batch_body<const FMA: bool, const T: usize>(
     vals: &[f32],
     positions: &[u8],
     xt: &[f32],
-    bp: usize,
+    d_in: usize,
     yt: &mut [f32],
 ) {
+    let bp = yt.len() / rows.len().max(1);
     let per_row = g.groups * g.n;
-    for (r, yrow) in rows.zip(yt.chunks_exact_mut(bp)) {
-        for t0 in (0..bp).step_by(T) {
-            let mut acc = [[0.0f32; T]; 2];
-            let mut s = r * per_row;
-            for grp in 0..g.groups {
-                let base = grp * g.m;
-                for k in 0..g.n {
-                    let v = vals[s];
-                    let c = base + pos(positions, s);
-                    let xs: &[f32; T] = xt[c * bp + t0..][..T].try_into().unwrap();
-                    let a = &mut acc[k & 1];
-                    for j in 0..T {
-                        a[j] = madd::<FMA>(v, xs[j], a[j]);
+    let chunk = (CHUNK_VALUES / per_row.max(1)).max(1);
+    for r0 in rows.clone().step_by(chunk) {
+        let r1 = (r0 + chunk).min(rows.end);
+        for (t, xs) in xt.chunks_exact(d_in * T).take(bp / T).enumerate() {
+            for r in r0..r1 {
+                let mut acc = [[0.0f32; T]; 4];
+                let mut s = r * per_row;
+                for grp in 0..g.groups {
+                    let base = grp * g.m;
+                    for _ in 0..g.n {
+                        let v = vals[s];
+                        let x: &[f32; T] =
+                            xs[(base + pos(positions, s)) * T..][..T].try_into().unwrap();
+                        let a = &mut acc[s & 3];
+                        for j in 0..T {
+                            a[j] = madd::<FMA>(v, x[j], a[j]);
+                        }
+                        s += 1;
                     }
-                    s += 1;
                 }
-            }
-            for j in 0..T {
-                yrow[t0 + j] = acc[0][j] + acc[1][j];
+                let out = &mut yt[(r - rows.start) * bp + t * T..][..T];
+                for j in 0..T {
+                    out[j] = (acc[0][j] + acc[1][j]) + (acc[2][j] + acc[3][j]);
+                }
             }
         }
     }
@@ -401,9 +408,8 @@ fn groups_batch_body<const FMA: bool, const T: usize>(
 
 multiversion!(fn groups_vec_any(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], x: &[f32], y: &mut [f32]) = groups_vec_any_body[]);
 multiversion!(fn groups_vec_pairs(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], x: &[f32], y: &mut [f32]) = groups_vec_pairs_body[]);
-multiversion!(fn groups_batch_8(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], xt: &[f32], bp: usize, yt: &mut [f32]) = groups_batch_body[8]);
-multiversion!(fn groups_batch_16(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], xt: &[f32], bp: usize, yt: &mut [f32]) = groups_batch_body[16]);
-multiversion!(fn groups_batch_32(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], xt: &[f32], bp: usize, yt: &mut [f32]) = groups_batch_body[32]);
+multiversion!(fn groups_batch_8(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], xt: &[f32], d_in: usize, yt: &mut [f32]) = groups_batch_body[8]);
+multiversion!(fn groups_batch_16(rows: Range<usize>, g: Geometry, vals: &[f32], positions: &[u8], xt: &[f32], d_in: usize, yt: &mut [f32]) = groups_batch_body[16]);
 
 #[cfg(test)]
 mod tests {

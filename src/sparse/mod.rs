@@ -22,11 +22,13 @@
 //! - Parallelism is over output rows, in contiguous blocks holding about the
 //!   same number of stored values, so threads get equal work on layers whose
 //!   rows differ in density.
-//! - For `b > 1` the kernels first transpose `x` into the workspace (`xᵀ`,
-//!   `[d_in, b]`), so that each stored weight `w_rc` updates a contiguous run
-//!   of `b` outputs from a contiguous run of `b` inputs: a vector
-//!   multiply-add instead of a gather. Results are gathered per row into
-//!   `yᵀ` and transposed back at the end.
+//! - For `b > 1` the kernels first lay `x` out in the workspace tile by tile
+//!   (`[b / T][d_in][T]`, `T` = 8 or 16 batch rows), so that each stored
+//!   weight `w_rc` updates `T` outputs from `T` contiguous inputs: a vector
+//!   multiply-add instead of a gather. Rows run in chunks of about 1,024
+//!   stored values and each chunk runs over every tile, so both the chunk's
+//!   weights and the tile's inputs are read from cache. Results go to `yᵀ`
+//!   (`[d_out, b]`) and are transposed into `y` at the end.
 //! - Explicit SIMD is limited to compiling the same portable loops several
 //!   times with wider instruction sets (AVX2+FMA, AVX-512) chosen at run
 //!   time; measurements are in docs/benchmarks.md.
@@ -318,11 +320,39 @@ pub(crate) fn transpose(
     }
 }
 
-/// Padded batch width used for `xᵀ` and `yᵀ`: a multiple of 8, so that the
-/// batched kernels run on whole vector tiles.
-pub(crate) fn padded_batch(b: usize) -> usize {
-    b.div_ceil(8) * 8
+/// Batch tile width of the batched kernels: 8 lanes for `b <= 8`, else 16
+/// (one AVX-512 or two AVX2 registers per partial sum).
+pub(crate) fn batch_tile(b: usize) -> usize {
+    if b <= 8 {
+        8
+    } else {
+        16
+    }
 }
+
+/// `b` rounded up to whole tiles.
+pub(crate) fn padded_batch(b: usize) -> usize {
+    b.div_ceil(batch_tile(b)) * batch_tile(b)
+}
+
+/// Lay `x` (`[b, d_in]`) out tile by tile: `xt[(t·d_in + c)·T + j] =
+/// x[(t·T + j)·d_in + c]`, zero where `t·T + j >= b`. One tile's inputs
+/// (`d_in · T` values) are then contiguous and stay in cache while a chunk
+/// of rows runs over them.
+pub(crate) fn tile_inputs(x: &[f32], b: usize, d_in: usize, xt: &mut [f32]) {
+    let t = batch_tile(b);
+    xt.fill(0.0);
+    for (i, xi) in x.chunks_exact(d_in.max(1)).take(b).enumerate() {
+        let tile = &mut xt[(i / t) * d_in * t..];
+        for (c, &v) in xi.iter().enumerate() {
+            tile[c * t + i % t] = v;
+        }
+    }
+}
+
+/// Stored values per chunk of rows in the batched kernels: the chunk's
+/// weights (about 6 KiB) and a tile of inputs share the L1 cache.
+pub(crate) const CHUNK_VALUES: usize = 1024;
 
 #[track_caller]
 pub(crate) fn check_shapes(d_out: usize, d_in: usize, x: &[f32], b: usize, y: &[f32]) {

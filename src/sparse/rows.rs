@@ -9,8 +9,8 @@
 use std::ops::Range;
 
 use super::{
-    check_shapes, for_row_blocks, madd, multiversion, padded_batch, transpose, Par, SparseError,
-    SparseErrorKind as K,
+    batch_tile, check_shapes, for_row_blocks, madd, multiversion, padded_batch, tile_inputs,
+    transpose, Par, SparseError, SparseErrorKind as K, CHUNK_VALUES,
 };
 
 /// Column indices of the stored values.
@@ -258,24 +258,23 @@ impl RowCompressed {
             });
             return;
         }
-        if b == 0 {
+        if b == 0 || self.d_in == 0 {
+            y.fill(0.0);
             return;
         }
         let bp = padded_batch(b);
         let (xt, rest) = work.split_at_mut(bp * self.d_in);
         let yt = &mut rest[..bp * self.d_out];
-        xt.fill(0.0);
-        transpose(x, b, self.d_in, self.d_in, xt, bp);
+        tile_inputs(x, b, self.d_in, xt);
         let xt = &*xt;
+        let d_in = self.d_in;
         for_row_blocks(yt, self.d_out, bp, par, cost, |rows, out| {
             let (s, v) = (&self.row_start[..], &self.values[..]);
-            match (&self.cols, bp % 32, bp % 16) {
-                (ColumnIndices::U16(c), 0, _) => rows_batch_u16_32(rows, s, c, v, xt, bp, out),
-                (ColumnIndices::U16(c), _, 0) => rows_batch_u16_16(rows, s, c, v, xt, bp, out),
-                (ColumnIndices::U16(c), _, _) => rows_batch_u16_8(rows, s, c, v, xt, bp, out),
-                (ColumnIndices::U32(c), 0, _) => rows_batch_u32_32(rows, s, c, v, xt, bp, out),
-                (ColumnIndices::U32(c), _, 0) => rows_batch_u32_16(rows, s, c, v, xt, bp, out),
-                (ColumnIndices::U32(c), _, _) => rows_batch_u32_8(rows, s, c, v, xt, bp, out),
+            match (&self.cols, batch_tile(b)) {
+                (ColumnIndices::U16(c), 8) => rows_batch_u16_8(rows, s, c, v, xt, d_in, out),
+                (ColumnIndices::U16(c), _) => rows_batch_u16_16(rows, s, c, v, xt, d_in, out),
+                (ColumnIndices::U32(c), 8) => rows_batch_u32_8(rows, s, c, v, xt, d_in, out),
+                (ColumnIndices::U32(c), _) => rows_batch_u32_16(rows, s, c, v, xt, d_in, out),
             }
         });
         transpose(yt, self.d_out, b, bp, y, self.d_out);
@@ -331,8 +330,9 @@ fn rows_vec<const FMA: bool, I: Index>(
     }
 }
 
-/// Batch `b > 1` on `xᵀ` (`[d_in, bp]`): for each tile of `T` batch columns,
-/// `yᵀ_r[t] = Σ_k v_k xᵀ_{c_k}[t]`, two partial sums per lane.
+/// Batch `b > 1` on tiled inputs `xt` (`[tiles][d_in][T]`, see
+/// `tile_inputs`): for each chunk of rows, each tile, each row,
+/// `yᵀ_r[t·T + j] = Σ_k v_k xt[t][c_k][j]`, four partial sums per lane.
 #[inline(always)]
 fn rows_batch<const FMA: bool, I: Index, const T: usize>(
     rows: Range<usize>,
@@ -340,45 +340,51 @@ fn rows_batch<const FMA: bool, I: Index, const T: usize>(
     cols: &[I],
     vals: &[f32],
     xt: &[f32],
-    bp: usize,
+    d_in: usize,
     yt: &mut [f32],
 ) {
-    for (r, yrow) in rows.zip(yt.chunks_exact_mut(bp)) {
-        let (a, b) = (start[r] as usize, start[r + 1] as usize);
-        let (c, v) = (&cols[a..b], &vals[a..b]);
-        for t0 in (0..bp).step_by(T) {
-            let mut acc = [[0.0f32; T]; 2];
-            let (c2, v2) = (c.chunks_exact(2), v.chunks_exact(2));
-            let (ct, vt) = (c2.remainder(), v2.remainder());
-            for (ci, vi) in c2.zip(v2) {
-                for u in 0..2 {
-                    let xs: &[f32; T] = xt[ci[u].at() * bp + t0..][..T].try_into().unwrap();
-                    for j in 0..T {
-                        acc[u][j] = madd::<FMA>(vi[u], xs[j], acc[u][j]);
+    let bp = yt.len() / rows.len().max(1);
+    let mut r0 = rows.start;
+    while r0 < rows.end {
+        let limit = start[r0] as usize + CHUNK_VALUES;
+        let r1 = (r0 + 1..rows.end).find(|&r| start[r + 1] as usize > limit).unwrap_or(rows.end);
+        for (t, xs) in xt.chunks_exact(d_in * T).take(bp / T).enumerate() {
+            for r in r0..r1 {
+                let (a, b) = (start[r] as usize, start[r + 1] as usize);
+                let (c, v) = (&cols[a..b], &vals[a..b]);
+                let mut acc = [[0.0f32; T]; 4];
+                let (c4, v4) = (c.chunks_exact(4), v.chunks_exact(4));
+                let (ct, vt) = (c4.remainder(), v4.remainder());
+                for (ci, vi) in c4.zip(v4) {
+                    for u in 0..4 {
+                        let x: &[f32; T] = xs[ci[u].at() * T..][..T].try_into().unwrap();
+                        for j in 0..T {
+                            acc[u][j] = madd::<FMA>(vi[u], x[j], acc[u][j]);
+                        }
                     }
                 }
-            }
-            for (ci, vi) in ct.iter().zip(vt) {
-                let xs: &[f32; T] = xt[ci.at() * bp + t0..][..T].try_into().unwrap();
+                for (ci, vi) in ct.iter().zip(vt) {
+                    let x: &[f32; T] = xs[ci.at() * T..][..T].try_into().unwrap();
+                    for j in 0..T {
+                        acc[0][j] = madd::<FMA>(*vi, x[j], acc[0][j]);
+                    }
+                }
+                let out = &mut yt[(r - rows.start) * bp + t * T..][..T];
                 for j in 0..T {
-                    acc[0][j] = madd::<FMA>(*vi, xs[j], acc[0][j]);
+                    out[j] = (acc[0][j] + acc[1][j]) + (acc[2][j] + acc[3][j]);
                 }
             }
-            for j in 0..T {
-                yrow[t0 + j] = acc[0][j] + acc[1][j];
-            }
         }
+        r0 = r1;
     }
 }
 
 multiversion!(fn rows_vec_u16(rows: Range<usize>, start: &[u32], cols: &[u16], vals: &[f32], x: &[f32], y: &mut [f32]) = rows_vec[u16]);
 multiversion!(fn rows_vec_u32(rows: Range<usize>, start: &[u32], cols: &[u32], vals: &[f32], x: &[f32], y: &mut [f32]) = rows_vec[u32]);
-multiversion!(fn rows_batch_u16_8(rows: Range<usize>, start: &[u32], cols: &[u16], vals: &[f32], xt: &[f32], bp: usize, yt: &mut [f32]) = rows_batch[u16, 8]);
-multiversion!(fn rows_batch_u16_16(rows: Range<usize>, start: &[u32], cols: &[u16], vals: &[f32], xt: &[f32], bp: usize, yt: &mut [f32]) = rows_batch[u16, 16]);
-multiversion!(fn rows_batch_u16_32(rows: Range<usize>, start: &[u32], cols: &[u16], vals: &[f32], xt: &[f32], bp: usize, yt: &mut [f32]) = rows_batch[u16, 32]);
-multiversion!(fn rows_batch_u32_8(rows: Range<usize>, start: &[u32], cols: &[u32], vals: &[f32], xt: &[f32], bp: usize, yt: &mut [f32]) = rows_batch[u32, 8]);
-multiversion!(fn rows_batch_u32_16(rows: Range<usize>, start: &[u32], cols: &[u32], vals: &[f32], xt: &[f32], bp: usize, yt: &mut [f32]) = rows_batch[u32, 16]);
-multiversion!(fn rows_batch_u32_32(rows: Range<usize>, start: &[u32], cols: &[u32], vals: &[f32], xt: &[f32], bp: usize, yt: &mut [f32]) = rows_batch[u32, 32]);
+multiversion!(fn rows_batch_u16_8(rows: Range<usize>, start: &[u32], cols: &[u16], vals: &[f32], xt: &[f32], d_in: usize, yt: &mut [f32]) = rows_batch[u16, 8]);
+multiversion!(fn rows_batch_u16_16(rows: Range<usize>, start: &[u32], cols: &[u16], vals: &[f32], xt: &[f32], d_in: usize, yt: &mut [f32]) = rows_batch[u16, 16]);
+multiversion!(fn rows_batch_u32_8(rows: Range<usize>, start: &[u32], cols: &[u32], vals: &[f32], xt: &[f32], d_in: usize, yt: &mut [f32]) = rows_batch[u32, 8]);
+multiversion!(fn rows_batch_u32_16(rows: Range<usize>, start: &[u32], cols: &[u32], vals: &[f32], xt: &[f32], d_in: usize, yt: &mut [f32]) = rows_batch[u32, 16]);
 
 #[cfg(test)]
 mod tests {
