@@ -284,21 +284,23 @@ fn print_table(streamed: bool, rows: &[Row]) {
 /// resident.
 fn dense_choice(par: Par, min_time: f64, rng: &mut Rng) {
     println!("### Dense kernel choice (weights resident)\n");
-    println!("| layer | batch | row loop µs | faer µs |");
-    println!("|---|---:|---:|---:|");
+    println!("| layer | batch | row loop µs | faer µs | tiles µs |");
+    println!("|---|---:|---:|---:|---:|");
     for &(d_out, d_in) in &SHAPES {
         let w: Vec<f32> = (0..d_out * d_in).map(|_| rng.value()).collect();
-        for b in [1, 2, 4, 8, 64] {
+        for b in [1, 2, 3, 4, 8, 64] {
             let x: Vec<f32> = (0..b * d_in).map(|_| rng.value()).collect();
             let mut y = vec![0.0f32; b * d_out];
-            let mut t = [0.0; 2];
-            for (k, kernel) in [DenseKernel::Rows, DenseKernel::Faer].into_iter().enumerate() {
+            let mut t = [0.0; 3];
+            let kernels = [DenseKernel::Rows, DenseKernel::Faer, DenseKernel::Tiles];
+            for (k, kernel) in kernels.into_iter().enumerate() {
                 t[k] = time(min_time, |_| {
                     dense_matmul(&w, d_out, d_in, &x, b, &mut y, kernel, par);
                     black_box(&y);
                 });
             }
-            println!("| {d_out}x{d_in} | {b} | {:.1} | {:.1} |", t[0] * 1e6, t[1] * 1e6);
+            let us = t.map(|v| v * 1e6);
+            println!("| {d_out}x{d_in} | {b} | {:.1} | {:.1} | {:.1} |", us[0], us[1], us[2]);
         }
     }
     println!();
