@@ -160,7 +160,7 @@ pub fn pack(
         }
     };
     let target = canon(out);
-    if model.input_files().iter().any(|i| *i == target) || canon(model.layout().root()) == target {
+    if model.input_files().contains(&target) || canon(model.layout().root()) == target {
         return Err(Error::new(
             ErrorKind::Input,
             format!("-o {}: refusing to overwrite an input file", out.display()),

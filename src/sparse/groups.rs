@@ -461,7 +461,7 @@ mod tests {
         for m in 1..=MAX_GROUP {
             for n in 1..=m {
                 // d_in a multiple of m, and one with a narrower last group.
-                for d_in in [3 * m, 2 * m + (m + 1) / 2] {
+                for d_in in [3 * m, 2 * m + m.div_ceil(2)] {
                     let d_out = 1 + rng.below(9);
                     let w = random_nm(&mut rng, d_out, d_in, n, m);
                     check(&w, d_out, d_in, n, m, &mut rng);

@@ -160,15 +160,15 @@ impl RowCompressed {
             return bad(format!("row {r}: offsets decrease ({a} > {b})"));
         }
         for r in 0..d_out {
-            for k in row_start[r] as usize..row_start[r + 1] as usize {
+            let (a, b) = (row_start[r] as usize, row_start[r + 1] as usize);
+            for (k, &v) in values.iter().enumerate().take(b).skip(a) {
                 let c = cols.get(k);
                 if c >= d_in {
                     return bad(format!("row {r}: column {c} is outside 0..{d_in}"));
                 }
-                if k > row_start[r] as usize && cols.get(k - 1) >= c {
+                if k > a && cols.get(k - 1) >= c {
                     return bad(format!("row {r}: columns not strictly increasing at {c}"));
                 }
-                let v = values[k];
                 if !v.is_finite() || v == 0.0 {
                     return bad(format!(
                         "row {r}, column {c}: stored value {v} is not finite and nonzero"
