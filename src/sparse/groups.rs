@@ -262,6 +262,12 @@ impl GroupPacked {
         let (v, p) = (&self.values[..], &self.positions[..]);
         if b == 1 {
             for_row_blocks(y, self.d_out, 1, par, cost, |rows, out| {
+                #[cfg(target_arch = "x86_64")]
+                if (g.n, g.m) == (2, 4) && super::isa() != super::Isa::Portable {
+                    // SAFETY: isa() checked AVX2, FMA and BMI2 at run time.
+                    unsafe { two_of_four_vec_avx2(rows, g, v, p, x, out) };
+                    return;
+                }
                 if g.n == 2 {
                     groups_vec_pairs(rows, g, v, p, x, out)
                 } else {
@@ -360,6 +366,67 @@ fn groups_vec_pairs_body<const FMA: bool>(
             acc[1] = madd::<FMA>(*v1, x[base + (a >> 4)], acc[1]);
         }
         *out = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+    }
+}
+
+/// Batch 1, 2:4, AVX2: four groups (16 inputs, 8 slots) per step. `pdep`
+/// spreads the 8 position nibbles into 8 bytes, which widen to lanes; adding
+/// the group offsets `0 0 4 4 8 8 12 12` gives each slot's input within the
+/// 16, and two in-register permutes of the 16 inputs plus a blend pick them,
+/// so no load depends on a position.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma,bmi2")]
+unsafe fn two_of_four_vec_avx2(
+    rows: Range<usize>,
+    g: Geometry,
+    vals: &[f32],
+    positions: &[u8],
+    x: &[f32],
+    y: &mut [f32],
+) {
+    use std::arch::x86_64::*;
+    // Whole groups of 4 inputs; a narrower last group goes to the tail.
+    let blocks = (x.len() / 4).min(g.groups) / 4;
+    let offsets = _mm256_setr_epi32(0, 0, 4, 4, 8, 8, 12, 12);
+    let seven = _mm256_set1_epi32(7);
+    for (r, out) in rows.zip(y.iter_mut()) {
+        let first = r * g.groups;
+        let v = &vals[2 * first..2 * (first + g.groups)];
+        let p = &positions[first..first + g.groups];
+        let mut acc = [_mm256_setzero_ps(); 2];
+        for k in 0..blocks {
+            let bits = u32::from_le_bytes(p[4 * k..4 * k + 4].try_into().unwrap());
+            let spread = _pdep_u64(u64::from(bits), 0x0F0F_0F0F_0F0F_0F0F);
+            let idx = _mm256_cvtepu8_epi32(_mm_cvtsi64_si128(spread as i64));
+            let idx = _mm256_add_epi32(idx, offsets);
+            let xs = &x[16 * k..16 * k + 16];
+            let vs = &v[8 * k..8 * k + 8];
+            // SAFETY: `xs` holds 16 and `vs` 8 floats (checked by slicing).
+            let (lo, hi, w) = unsafe {
+                (
+                    _mm256_loadu_ps(xs.as_ptr()),
+                    _mm256_loadu_ps(xs.as_ptr().add(8)),
+                    _mm256_loadu_ps(vs.as_ptr()),
+                )
+            };
+            let from_hi = _mm256_castsi256_ps(_mm256_cmpgt_epi32(idx, seven));
+            let picked = _mm256_blendv_ps(
+                _mm256_permutevar8x32_ps(lo, idx),
+                _mm256_permutevar8x32_ps(hi, idx),
+                from_hi,
+            );
+            acc[k & 1] = _mm256_fmadd_ps(w, picked, acc[k & 1]);
+        }
+        let sum = _mm256_add_ps(acc[0], acc[1]);
+        let half = _mm_add_ps(_mm256_castps256_ps128(sum), _mm256_extractf128_ps(sum, 1));
+        let pair = _mm_add_ps(half, _mm_movehl_ps(half, half));
+        let mut total = _mm_cvtss_f32(_mm_add_ss(pair, _mm_movehdup_ps(pair)));
+        for grp in 4 * blocks..g.groups {
+            let (a, base) = (usize::from(p[grp]), grp * 4);
+            total = v[2 * grp].mul_add(x[base + (a & 15)], total);
+            total = v[2 * grp + 1].mul_add(x[base + (a >> 4)], total);
+        }
+        *out = total;
     }
 }
 

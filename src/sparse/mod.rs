@@ -30,8 +30,9 @@
 //!   weights and the tile's inputs are read from cache. Results go to `yᵀ`
 //!   (`[d_out, b]`) and are transposed into `y` at the end.
 //! - Explicit SIMD is limited to compiling the same portable loops several
-//!   times with wider instruction sets (AVX2+FMA, AVX-512) chosen at run
-//!   time; measurements are in docs/benchmarks.md.
+//!   times with wider instruction sets (AVX2+FMA+BMI2, AVX-512) chosen at
+//!   run time, plus one hand-written AVX2 kernel for 2:4 at batch 1 where
+//!   measurement showed it pays; measurements are in docs/benchmarks.md.
 
 mod dense;
 mod groups;
@@ -171,7 +172,9 @@ pub(crate) fn isa() -> Isa {
             if std::env::var_os("LOPPER_PORTABLE_KERNELS").is_some() {
                 return Isa::Portable;
             }
-            let avx2 = is_x86_feature_detected!("avx2") && is_x86_feature_detected!("fma");
+            let avx2 = is_x86_feature_detected!("avx2")
+                && is_x86_feature_detected!("fma")
+                && is_x86_feature_detected!("bmi2");
             if avx2 && is_x86_feature_detected!("avx512f") && is_x86_feature_detected!("avx512vl") {
                 return Isa::Avx512;
             }
