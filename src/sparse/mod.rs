@@ -31,8 +31,11 @@
 //!   (`[d_out, b]`) and are transposed into `y` at the end.
 //! - Explicit SIMD is limited to compiling the same portable loops several
 //!   times with wider instruction sets (AVX2+FMA+BMI2, AVX-512) chosen at
-//!   run time, plus one hand-written AVX2 kernel for 2:4 at batch 1 where
-//!   measurement showed it pays; measurements are in docs/benchmarks.md.
+//!   run time, plus two hand-written AVX2 kernels at batch 1 where
+//!   measurement showed they pay (a gather for compressed rows with u16
+//!   indices, in-register permutes for 2:4); measurements are in
+//!   docs/benchmarks.md. Setting `LOPPER_PORTABLE_KERNELS` forces the
+//!   portable loops (for comparison and debugging).
 
 mod dense;
 mod groups;
