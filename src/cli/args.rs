@@ -30,6 +30,10 @@ pub enum Command {
     /// Put saved reports (prune --report files, comparison.json) side by
     /// side on one page.
     Report(ReportArgs),
+    /// Time each pruned layer's product, dense against sparse, on this CPU.
+    Speed(SpeedArgs),
+    /// Write a pruned model's sparse layers to a compact .sprig file.
+    Pack(PackArgs),
 }
 
 /// `lopper eval`.
@@ -269,6 +273,40 @@ pub struct CompareArgs {
     pub quiet: bool,
 }
 
+/// `lopper speed`.
+#[derive(Debug, Args)]
+pub struct SpeedArgs {
+    /// A pruned model: .safetensors file, *.safetensors.index.json, or
+    /// model directory.
+    pub model: PathBuf,
+    /// Batch sizes (rows of x in y = x Wᵀ), comma-separated.
+    #[arg(long, value_name = "B,B,..", value_delimiter = ',', default_value = "1,8,64")]
+    pub batch: Vec<usize>,
+    /// Worker threads (0 = all cores).
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub threads: usize,
+    /// Seconds of sampling per kernel and batch size, at least.
+    #[arg(long, value_name = "SECS", default_value_t = 0.2, allow_negative_numbers = true)]
+    pub min_time: f64,
+    /// Read weights from main memory, as when a model larger than the CPU
+    /// cache runs layer after layer: cycle through copies of each weight
+    /// adding up to 512 MiB. Default: one copy, cache-resident if it fits.
+    #[arg(long)]
+    pub streamed: bool,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    pub json: bool,
+    /// Time only 2-D float tensors matching GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub only: Vec<String>,
+    /// Do not time tensors matching GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub skip: Vec<String>,
+    /// No progress bar.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
 /// `lopper report`.
 #[derive(Debug, Args)]
 pub struct ReportArgs {
@@ -283,6 +321,26 @@ pub struct ReportArgs {
     /// [default: the highest sparsity, else the first pattern]
     #[arg(long, value_name = "S|N:M")]
     pub focus: Option<String>,
+    /// Print nothing but errors.
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// `lopper pack`.
+#[derive(Debug, Args)]
+pub struct PackArgs {
+    /// A pruned model: .safetensors file, *.safetensors.index.json, or
+    /// model directory.
+    pub model: PathBuf,
+    /// Output .sprig file (docs/pack-format.md).
+    #[arg(short = 'o', long = "output", value_name = "FILE")]
+    pub output: PathBuf,
+    /// Pack only 2-D float tensors matching GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub only: Vec<String>,
+    /// Do not pack tensors matching GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub skip: Vec<String>,
     /// Print nothing but errors.
     #[arg(long, short = 'q')]
     pub quiet: bool,

@@ -8,6 +8,7 @@ mod args;
 mod compare;
 mod config;
 mod inspect;
+mod sparse;
 
 use crate::pipeline::{self, ErrorKind, Progress};
 use args::{Cli, Command};
@@ -73,6 +74,8 @@ pub fn run() -> i32 {
         Command::Eval(a) => eval(&a),
         Command::Compare(a) => compare::compare(&a),
         Command::Report(a) => compare::report(&a),
+        Command::Speed(a) => sparse::speed(&a),
+        Command::Pack(a) => sparse::pack(&a),
     };
     match result {
         Ok(()) => EXIT_OK,

@@ -14,6 +14,8 @@
 //!   every file goes to a temp file in the target folder, is fsynced and then
 //!   renamed, so a crash never leaves a half-written file and an mmapped input
 //!   is never truncated. Writing over an input is refused.
+//! - [`read_pack`] and [`write_pack`] (`pack.rs`): the `.sprig` file of
+//!   sparse layers written by `lopper pack` (docs/pack-format.md).
 //! - [`dtype`]: dtype names, little-endian decoding, round-to-nearest-even
 //!   encoding from `f64`.
 //!
@@ -29,6 +31,7 @@
 pub mod dtype;
 mod file;
 mod model;
+mod pack;
 mod write;
 
 use std::fmt;
@@ -36,6 +39,7 @@ use std::path::{Path, PathBuf};
 
 pub use file::{TensorFile, TensorInfo};
 pub use model::{Layout, Model};
+pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
 pub use write::{write_atomic, write_model};
 
@@ -90,6 +94,9 @@ pub enum LoadErrorKind {
     DuplicateTensor,
     /// A directory holds no model, or more than one.
     NoModel,
+    /// A packed (`.sprig`) layer's data breaks the layout's rules (offsets,
+    /// indices, padding); see docs/pack-format.md.
+    InvalidPackedLayer,
 }
 
 /// An error while reading a file or model; names the file and, where
