@@ -327,3 +327,60 @@ fn text_input_errors_are_one_line_name_the_culprit_and_write_nothing() {
     let e = stderr(&o);
     assert!(e.contains("bert, llama, mistral, qwen2, gpt2") && e.contains("--activations"), "{e}");
 }
+
+#[test]
+fn compare_with_text_runs_each_method_on_its_own_inputs_and_reports_end_to_end() {
+    let Some(model) = model_dir() else { return };
+    if texts().is_none() {
+        return;
+    }
+    let dir = Scratch::new("textcal-compare");
+    let out = dir.path("cmp");
+    let o = lopper(&[
+        "compare",
+        s(&model),
+        "--text",
+        CALIB,
+        "--samples",
+        "16",
+        "--sparsities",
+        "0.5",
+        "--methods",
+        "magnitude,obs",
+        "--only",
+        "encoder.layer.5.*",
+        "--eval-text",
+        HELDOUT,
+        "--out-dir",
+        s(&out),
+        "--quiet",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("comparison.json")).unwrap())
+            .unwrap();
+    assert_eq!(json["calibration"]["kind"], "text");
+    let runs = json["runs"].as_array().unwrap();
+    assert_eq!(runs.len(), 2);
+    let mut e2e = Vec::new();
+    for r in runs {
+        assert_eq!(r["calibration_inputs"], "own (sequential)");
+        assert_eq!(r["layers"].as_array().unwrap().len(), 6, "the six layers of block 5");
+        assert_eq!(r["end_to_end"]["metric"], "mean cosine");
+        e2e.push(r["end_to_end"]["value"].as_f64().unwrap());
+    }
+    // Only the last block is pruned, so both stay close to the dense model,
+    // and reconstruction still beats magnitude.
+    assert!(e2e[1] > e2e[0] && e2e[0] > 0.5, "{e2e:?}");
+    // The page shows the JSON's figures.
+    let html = std::fs::read_to_string(out.join("comparison.html")).unwrap();
+    let shown: Vec<f64> = html
+        .split("data-field=\"end_to_end\" data-value=\"")
+        .skip(1)
+        .map(|t| t[..t.find('"').unwrap()].parse().unwrap())
+        .collect();
+    assert_eq!(shown.len(), 2);
+    for (a, b) in shown.iter().zip(&e2e) {
+        assert!((a - b).abs() <= 1e-12 * b.abs(), "{a} vs {b}");
+    }
+}
