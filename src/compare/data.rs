@@ -511,6 +511,90 @@ pub fn check_compatible(sources: &[Source]) -> Result<(), String> {
     Ok(())
 }
 
+/// Small comparisons for unit tests.
+#[cfg(test)]
+pub(crate) mod testing {
+    use super::*;
+
+    /// A layer report named `name` with calibration error `err` and
+    /// held-out error `held · err` (none when `held` is `None`).
+    pub fn layer(name: &str, err: f64, held: Option<f64>) -> LayerReport {
+        LayerReport {
+            name: name.into(),
+            shape: [2, 4],
+            kept: 4,
+            total: 8,
+            sparsity: 0.5,
+            rel_error: err,
+            rel_error_holdout: held.map(|h| h * err),
+            seconds: 0.25,
+            calibration_rows: 9,
+            holdout_rows: usize::from(held.is_some()),
+            ridge_alpha: 0.01,
+            ridge_lambda: 0.1,
+            objective_initial: 1.0,
+            objective_final: 1.0,
+            sweeps: 0,
+            swaps: 0,
+            init: None,
+        }
+    }
+
+    /// A run with `n` layers `l0, l1, …` of error `err`.
+    pub fn run(m: Method, p: Pattern, err: f64, held: Option<f64>, n: usize) -> Run {
+        let mut r = new_run(m, p, INPUTS_SHARED);
+        for i in 0..n {
+            r.layers.push(layer(&format!("l{i}"), err, held));
+        }
+        r.resum();
+        r
+    }
+
+    /// A comparison of `n_layers` layers holding `runs`.
+    pub fn comparison(n_layers: usize, runs: Vec<Run>) -> Comparison {
+        Comparison {
+            format: FORMAT.into(),
+            format_version: FORMAT_VERSION,
+            tool_version: "0".into(),
+            created: "2025-01-01T00:00:00Z".into(),
+            status: Status::Complete,
+            status_detail: None,
+            model: "m.safetensors".into(),
+            calibration: CalibrationInfo {
+                kind: "activations".into(),
+                path: "a".into(),
+                holdout: 0.1,
+                description: "d".into(),
+            },
+            settings: CompareSettings {
+                methods: vec![],
+                targets: vec![],
+                scope: "row".into(),
+                ridge: serde_json::json!("auto"),
+                max_sweeps: 20,
+                layer_seconds: None,
+                threads: 1,
+                only: vec![],
+                skip: vec![],
+                keep_models: false,
+                focus: String::new(),
+                eval_text: None,
+            },
+            layers: (0..n_layers)
+                .map(|i| LayerInfo {
+                    name: format!("l{i}"),
+                    shape: [2, 4],
+                    calibration_rows: 9,
+                    holdout_rows: 1,
+                    gram_seconds: 0.0,
+                })
+                .collect(),
+            runs,
+            notice: VALIDATION_NOTICE.into(),
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

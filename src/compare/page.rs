@@ -324,11 +324,11 @@ fn header(h: &mut String, v: &View<'_>, title: &str) {
         _ => "date unknown".to_string(),
     };
     let versions: Vec<&str> = versions.into_iter().collect();
-    let _ = write!(
+    let _ = writeln!(
         h,
         "<header><div><p class=\"kicker\">lopper · pruning methods side by side</p>\
          <h1>{}</h1><div>{status}</div></div>\
-         <div class=\"meta\">{} layers · {runs} runs{}<br>lopper {} · {}</div></header>\n",
+         <div class=\"meta\">{} layers · {runs} runs{}<br>lopper {} · {}</div></header>",
         esc(title),
         v.layer_count(),
         if v.sources.len() > 1 {
@@ -339,9 +339,9 @@ fn header(h: &mut String, v: &View<'_>, title: &str) {
         esc(&versions.join(", ")),
         esc(&date),
     );
-    let _ = write!(
+    let _ = writeln!(
         h,
-        "<p class=\"caution\" data-notice><strong>Caution.</strong> {}</p>\n",
+        "<p class=\"caution\" data-notice><strong>Caution.</strong> {}</p>",
         esc(&first.notice)
     );
 }
@@ -364,11 +364,11 @@ fn swatch(s: &Series) -> String {
 fn summary_table(h: &mut String, v: &View<'_>) {
     let metric = v.metric;
     let has_mag = v.series.iter().any(|s| s.method == "magnitude");
-    let _ = write!(
+    let _ = writeln!(
         h,
         "<h2>Summary</h2><p class=\"lede\">Mean {} relative error over the pruned layers \
          (lower is better; the lowest per target is marked), with the time the solver took. \
-         End-to-end figures appear once the model is evaluated on held-out text.</p>\n",
+         End-to-end figures appear once the model is evaluated on held-out text.</p>",
         metric.words()
     );
     h.push_str("<table class=\"summary\" data-table=\"summary\"><thead><tr><th>target, method</th><th>zeros</th>");
@@ -402,7 +402,7 @@ fn summary_table(h: &mut String, v: &View<'_>) {
                 .and_then(|(_, r)| metric.mean(r))
         };
         let _ =
-            write!(h, "<tr class=\"group\"><td colspan=\"{cols}\">{}</td></tr>\n", esc(&t.label()));
+            writeln!(h, "<tr class=\"group\"><td colspan=\"{cols}\">{}</td></tr>", esc(&t.label()));
         for &(s, r) in &rows {
             let lead = metric.mean(r);
             let other = match metric {
@@ -497,11 +497,11 @@ fn summary_table(h: &mut String, v: &View<'_>) {
         .flat_map(|s| s.comparison.layers.iter().map(|l| l.gram_seconds))
         .sum();
     if gram > 0.0 {
-        let _ = write!(
+        let _ = writeln!(
             h,
             "<p class=\"lede\" style=\"margin-top:6px;font-size:12.5px\">Solve time excludes \
              reading the calibration inputs and building each layer's Gram matrices, done once \
-             for all runs that share them: {gram:.2} s.</p>\n"
+             for all runs that share them: {gram:.2} s.</p>"
         );
     }
 }
@@ -601,11 +601,11 @@ fn curves(h: &mut String, v: &View<'_>) {
     if values.is_empty() {
         return;
     }
-    let _ = write!(
+    let _ = writeln!(
         h,
         "<h2>Error against sparsity</h2><p class=\"lede\">Each point is one run: the mean {} \
          relative error of its layers. Lines join a method's unstructured targets{}.</p>\
-         <div class=\"charts\">\n",
+         <div class=\"charts\">",
         metric.words(),
         if patterns.is_empty() {
             ""
@@ -779,11 +779,14 @@ fn per_layer(h: &mut String, v: &View<'_>) {
     }
     let values: Vec<f64> =
         runs.iter().flat_map(|(_, r)| r.layers.iter().filter_map(|l| metric.layer(l))).collect();
-    let _ = write!(
+    if values.is_empty() {
+        return;
+    }
+    let _ = writeln!(
         h,
         "<h2>Per layer at {}</h2><p class=\"lede\">The {} relative error of every layer, one \
-         marker per method; layers further right lose more of their output. Rows follow the \
-         model's layer order.</p>\n",
+         marker per method; layers further right lose more of their output. Rows are in \
+         pruning order (sorted by tensor name).</p>",
         esc(&t.label()),
         metric.words()
     );
@@ -1069,4 +1072,74 @@ fn all_figures(h: &mut String, v: &View<'_>) {
         }
     }
     h.push_str("</tbody></table></details>\n");
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::compare::data::testing::{comparison, run};
+    use crate::solve::{Method, Pattern, Scope};
+
+    fn page(c: crate::compare::data::Comparison, focus: Option<&str>) -> String {
+        render(&[Source { label: "x".into(), path: None, comparison: c }], focus)
+    }
+
+    fn charts(html: &str) -> Vec<&str> {
+        html.split("data-chart=\"").skip(1).map(|s| &s[..s.find('"').unwrap()]).collect()
+    }
+
+    #[test]
+    fn chart_set_follows_the_targets() {
+        let row = |s| Pattern::Unstructured { sparsity: s, scope: Scope::Row };
+        let nm = Pattern::NofM { n: 2, m: 4 };
+        // Sparsities and a pattern: curves, the pattern panel, per layer at 70%.
+        let c = comparison(
+            2,
+            vec![
+                run(Method::Obs, row(0.5), 0.01, Some(1.5), 2),
+                run(Method::Obs, row(0.7), 0.02, Some(1.5), 2),
+                run(Method::Obs, nm, 0.015, Some(1.5), 2),
+            ],
+        );
+        let h = page(c.clone(), None);
+        assert_eq!(charts(&h), ["curves", "patterns", "layers"]);
+        assert!(h.contains("data-target=\"0.7\"") && h.contains("Per layer at 70%"));
+        assert!(!h.contains("data-target=\"2:4\""));
+        let h = page(c, Some("2:4"));
+        assert!(h.contains("data-chart=\"layers\" data-target=\"2:4\""));
+        // Patterns only: no curves, the panel carries the legend.
+        let h = page(comparison(2, vec![run(Method::L0, nm, 0.01, Some(1.5), 2)]), None);
+        assert_eq!(charts(&h), ["patterns", "layers"]);
+        assert!(h.contains("legend-item"));
+    }
+
+    #[test]
+    fn without_held_out_rows_the_page_leads_with_calibration_error() {
+        let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Layer };
+        let h = page(comparison(1, vec![run(Method::Magnitude, row, 0.25, None, 1)]), None);
+        assert!(h.contains("mean calibration relative error"));
+        assert!(!h.contains("mean held-out relative error"));
+        assert!(h.contains("data-field=\"mean_rel_error\" data-value=\"0.25\""));
+        assert!(h.contains("50% per layer"));
+    }
+
+    #[test]
+    fn a_set_stopped_before_any_solve_still_renders() {
+        let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
+        let mut c = comparison(3, vec![run(Method::L0, row, 0.1, Some(1.0), 0)]);
+        c.status = Status::Interrupted;
+        let h = page(c, None);
+        assert!(h.contains("incomplete — interrupted"));
+        assert!(charts(&h).is_empty(), "no figures, no charts");
+        assert!(h.contains("(0 of 3 layers)") && h.ends_with("</html>\n"));
+    }
+
+    #[test]
+    fn text_is_escaped() {
+        let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
+        let mut c = comparison(1, vec![run(Method::Obs, row, 0.1, Some(1.0), 1)]);
+        c.model = "<script>x</script>&.safetensors".into();
+        let h = page(c, None);
+        assert!(!h.contains("<script>x") && h.contains("&lt;script&gt;x"));
+    }
 }

@@ -24,7 +24,7 @@ pub fn esc(s: &str) -> String {
 /// terminal tables use); `—` for a missing or non-finite value.
 pub fn sci(v: Option<f64>) -> String {
     match v {
-        Some(x) if x == 0.0 => "0".to_string(),
+        Some(0.0) => "0".to_string(),
         Some(x) if x.is_finite() => format!("{x:.2e}"),
         _ => "—".to_string(),
     }

@@ -103,5 +103,51 @@ pub fn render(sources: &[Source]) -> String {
         let _ = write!(line, "  {secs:>9.2}");
         let _ = writeln!(out, "{line}");
     }
+    // Stopped early: say how much of the model the means cover.
+    let total = sources.iter().map(|s| s.comparison.layers.len()).max().unwrap_or(0);
+    let counts: Vec<usize> = runs.iter().map(|(_, r)| r.layers.len()).collect();
+    let (lo, hi) = (counts.iter().min().copied(), counts.iter().max().copied());
+    if let (Some(lo), Some(hi)) = (lo, hi) {
+        if lo < total {
+            let span = if lo == hi { lo.to_string() } else { format!("{lo} to {hi}") };
+            let _ = writeln!(
+                out,
+                "partial: runs cover {span} of {total} layers; means are over finished layers"
+            );
+        }
+    }
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::compare::data::testing::{comparison, run};
+    use crate::solve::{Method, Pattern, Scope};
+
+    #[test]
+    fn stars_the_lowest_per_target_and_flags_partial_runs() {
+        let half = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
+        let nm = Pattern::NofM { n: 2, m: 4 };
+        let mut runs = Vec::new();
+        for (m, e) in [(Method::Magnitude, 0.1), (Method::L0, 0.01)] {
+            for p in [nm, half] {
+                // The local search at 2:4 stopped after one of two layers.
+                let n = if m == Method::L0 && p == nm { 1 } else { 2 };
+                runs.push(run(m, p, e, Some(2.0), n));
+            }
+        }
+        let c = comparison(2, runs);
+        let t = render(&[Source { label: "x".into(), path: None, comparison: c }]);
+        let lines: Vec<&str> = t.lines().collect();
+        assert!(lines[0].contains("held-out"), "{t}");
+        // Targets sorted: the sparsity before the pattern, whatever the run order.
+        let head = lines[1];
+        assert!(head.find("50%").unwrap() < head.find("2:4").unwrap(), "{t}");
+        let l0 = lines.iter().find(|l| l.starts_with("l0")).unwrap();
+        assert_eq!(l0.matches('*').count(), 2, "{t}");
+        assert!(l0.contains("2.00e-2*"), "{t}");
+        assert!(l0.trim_end().ends_with("0.75"), "3 layers x 0.25 s: {t}");
+        assert!(t.contains("partial: runs cover 1 to 2 of 2 layers"), "{t}");
+    }
 }
