@@ -632,3 +632,49 @@ fn compare_refuses_bad_input_before_writing() {
         assert!(!out.exists(), "{args:?} created the output folder");
     }
 }
+
+#[test]
+fn speed_batch_times_every_kept_model_and_the_page_shows_it() {
+    let dir = Scratch::new("compare-speed");
+    let out = dir.path("cmp");
+    let o = lopper(&[
+        "compare",
+        &format!("{DEMO}/model.safetensors"),
+        "--activations",
+        &format!("{DEMO}/calibration.safetensors"),
+        "--sparsities",
+        "0.9",
+        "--methods",
+        "magnitude,obs",
+        "--out-dir",
+        s(&out),
+        "--keep-models",
+        "--speed-batch",
+        "1",
+        "--quiet",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let c = json(&out.join("comparison.json"));
+    for r in c["runs"].as_array().unwrap() {
+        let sp = &r["speed"];
+        assert_eq!(sp["batch"], 1, "{r}");
+        assert!(sp["dense_seconds"].as_f64().unwrap() > 0.0);
+        assert!(sp["sparse_seconds"].as_f64().unwrap() > 0.0);
+    }
+    let html = std::fs::read_to_string(out.join("comparison.html")).unwrap();
+    assert_eq!(html.matches("data-field=\"speedup\"").count(), 2);
+    // Timing needs the pruned weights.
+    let o = lopper(&[
+        "compare",
+        &format!("{DEMO}/model.safetensors"),
+        "--activations",
+        &format!("{DEMO}/calibration.safetensors"),
+        "--out-dir",
+        s(&dir.path("none")),
+        "--speed-batch",
+        "1",
+    ]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("--keep-models"), "{}", stderr(&o));
+    assert!(!dir.path("none").exists());
+}

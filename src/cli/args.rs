@@ -237,6 +237,11 @@ pub struct CompareArgs {
     /// Also write every run's pruned model under DIR/models/.
     #[arg(long)]
     pub keep_models: bool,
+    /// With --keep-models: time every run's pruned layers, dense against
+    /// sparse kernels, at this batch size (as `lopper speed` does) and add a
+    /// speed column to the page.
+    #[arg(long, value_name = "B")]
+    pub speed_batch: Option<usize>,
     /// Target for the per-layer chart (one of the sparsities or patterns)
     /// [default: the highest sparsity, else the first pattern]
     #[arg(long, value_name = "S|N:M")]

@@ -119,6 +119,12 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig, String> {
             return Err(format!("{flag} must be at least 1"));
         }
     }
+    if a.speed_batch.is_some() && !a.keep_models {
+        return Err("--speed-batch times the pruned models: add --keep-models".into());
+    }
+    if a.speed_batch == Some(0) {
+        return Err("--speed-batch must be at least 1".into());
+    }
     let calibration = match (&a.activations, &a.text) {
         (Some(p), None) => Calibration::Activations(p.clone()),
         (None, Some(t)) => Calibration::Text(TextSource {
@@ -151,6 +157,7 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig, String> {
         targets,
         out_dir: a.out_dir.clone(),
         keep_models: a.keep_models,
+        speed_batch: a.speed_batch,
         focus,
         eval_text: a.eval_text.clone(),
         globs: (a.only.clone(), a.skip.clone()),

@@ -71,6 +71,8 @@ pub struct CompareConfig {
     pub out_dir: PathBuf,
     /// Write each run's pruned model under `models/<run id>/`.
     pub keep_models: bool,
+    /// Time each written model's pruned layers at this batch size.
+    pub speed_batch: Option<usize>,
     /// Target key for the per-layer chart (`None`: the highest sparsity, or
     /// the first target).
     pub focus: Option<String>,
@@ -477,6 +479,13 @@ pub fn compare(
         // No model written: leave no empty `models/` behind.
         let _ = std::fs::remove_dir(cfg.out_dir.join("models"));
     }
+    if failure.is_none() {
+        if let Err(e) = measure_speed(cfg, &mut comp, progress) {
+            comp.status = Status::Failed;
+            comp.status_detail = Some(e.to_string());
+            failure = Some(e);
+        }
+    }
     checkpoint(cfg, &comp, control)?;
     match failure {
         Some(e) => Err(e),
@@ -799,9 +808,50 @@ fn compare_text(
         (None, true) => Status::Interrupted,
         (None, false) => Status::Complete,
     };
+    if failure.is_none() {
+        if let Err(e) = measure_speed(cfg, &mut comp, progress) {
+            comp.status = Status::Failed;
+            comp.status_detail = Some(e.to_string());
+            failure = Some(e);
+        }
+    }
     checkpoint(cfg, &comp, control)?;
     match failure {
         Some(e) => Err(e),
         None => Ok(Outcome { comparison: comp, outputs }),
     }
+}
+
+/// With `speed_batch`, time every written run model's pruned layers, dense
+/// against sparse kernels, and record the sums over layers.
+fn measure_speed(
+    cfg: &CompareConfig,
+    comp: &mut Comparison,
+    progress: &dyn Fn(Progress<'_>),
+) -> Result<(), Error> {
+    let Some(batch) = cfg.speed_batch else { return Ok(()) };
+    let speed = crate::deploy::SpeedConfig {
+        batches: vec![batch],
+        threads: cfg.base.threads,
+        min_time: 0.1,
+        selection: cfg.base.selection.clone(),
+        stream_bytes: 0,
+    };
+    for run in comp.runs.iter_mut() {
+        let Some(path) = &run.model_output else { continue };
+        progress(Progress::Writing);
+        let model = Model::open(Path::new(path))?;
+        let report = crate::deploy::measure(&model, &speed, &|_, _, _| {}).map_err(|e| Error {
+            kind: ErrorKind::Solve,
+            message: format!("timing {}: {e}", run.id),
+        })?;
+        if let Some(t) = report.totals.timings.first() {
+            run.speed = Some(data::Speed {
+                batch: t.batch,
+                dense_seconds: t.dense_seconds,
+                sparse_seconds: t.sparse_seconds,
+            });
+        }
+    }
+    Ok(())
 }
