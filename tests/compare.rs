@@ -584,7 +584,7 @@ fn compare_refuses_bad_input_before_writing() {
     };
     let acts_flag = ["--activations", s(&acts)];
     let cases: Vec<(Vec<String>, Vec<&str>)> = vec![
-        (base(&["--text", s(&text)], &out), vec!["--text", "calib.txt", "--activations"]),
+        (base(&["--text", s(&text)], &out), vec!["config.json", "text calibration"]),
         (base(&[&acts_flag[..], &["--eval-text", s(&text)]].concat(), &out), vec!["--eval-text"]),
         (base(&[], &out), vec!["--activations", "--text"]),
         (

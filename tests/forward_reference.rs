@@ -28,7 +28,6 @@ use lopper::arch::{self, Batch, Family, Network};
 use lopper::io::Model;
 use serde_json::{json, Value};
 use std::collections::HashMap;
-use std::path::PathBuf;
 
 const TOL: f64 = 1e-4;
 
@@ -720,27 +719,6 @@ fn gpt2_matches_candle_whisper_text_decoder() {
 
 // ----------------------------------------------------------------- BERT ----
 
-/// The MiniLM folder, or `None` (panics under CI, which must have it); the
-/// same convention as tests/real_model.rs.
-fn minilm_dir() -> Option<PathBuf> {
-    let dir = std::env::var_os("LOPPER_TEST_MODEL").map(PathBuf::from).unwrap_or_else(|| {
-        PathBuf::from(std::env::var_os("HOME").unwrap_or_default())
-            .join(".cache/lopper/all-minilm-l6-v2")
-    });
-    if dir.join("model.safetensors").is_file() {
-        return Some(dir);
-    }
-    let msg = format!(
-        "the test model is missing at {}: run `bash scripts/fetch-test-model.sh`",
-        dir.display()
-    );
-    if in_ci() {
-        panic!("{msg}");
-    }
-    eprintln!("skipping: {msg}");
-    None
-}
-
 /// lopper's final hidden states `[n, L, d]` (embeddings and every block).
 fn hidden(net: &dyn Network, ids: &[Vec<u32>]) -> Tensor {
     let mut x = net.embed(&Batch::new(ids)).unwrap();
@@ -752,7 +730,7 @@ fn hidden(net: &dyn Network, ids: &[Vec<u32>]) -> Tensor {
 
 #[test]
 fn bert_matches_candle_bert_on_minilm() {
-    let Some(dir) = minilm_dir() else { return };
+    let Some(dir) = model_dir() else { return };
     let model = Model::open(&dir).unwrap();
     let mut net = arch::load(&model).unwrap();
     assert_eq!(net.family(), Family::Bert);

@@ -330,13 +330,23 @@ pub trait Network: Send + Sync {
     }
 }
 
+/// The folder that holds a model's `config.json` and `tokenizer.json`: the
+/// model directory, or the folder of a single file or shard index.
+pub fn model_dir(model: &Model) -> std::path::PathBuf {
+    let root = model.layout().root();
+    if root.is_dir() {
+        root.to_path_buf()
+    } else {
+        root.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new(".")).to_path_buf()
+    }
+}
+
 /// Build the network described by `dir/config.json` from `model`'s tensors.
 ///
 /// # Errors
 /// Config errors, unsupported families, and missing or misshapen tensors.
 pub fn load(model: &Model) -> Result<Box<dyn Network>> {
-    let dir = model.layout().root();
-    let cfg = ArchConfig::read(dir)?;
+    let cfg = ArchConfig::read(&model_dir(model))?;
     let w = Weights::new(model);
     Ok(match cfg.family {
         Family::Bert => Box::new(bert::Bert::new(&cfg, &w)?),

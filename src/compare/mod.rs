@@ -317,10 +317,6 @@ pub fn compare(
             }
         })
         .collect();
-    let ridge = match base.ridge {
-        Ridge::Fixed(a) => serde_json::json!(a),
-        Ridge::Auto { .. } => serde_json::json!("auto"),
-    };
     let rows = layers.first().map(|l| (l.calibration_rows, l.holdout_rows)).unwrap_or((0, 0));
     let uniform = layers.iter().all(|l| (l.calibration_rows, l.holdout_rows) == rows);
     let description = format!(
@@ -344,28 +340,7 @@ pub fn compare(
             holdout: base.holdout,
             description,
         },
-        settings: CompareSettings {
-            methods: cfg.methods.iter().map(|m| m.name().to_string()).collect(),
-            targets: cfg.targets.iter().map(|p| data::target_key(*p)).collect(),
-            scope: cfg
-                .targets
-                .iter()
-                .find_map(|p| match p {
-                    Pattern::Unstructured { .. } => Some(data::scope_name(*p)),
-                    Pattern::NofM { .. } => None,
-                })
-                .unwrap_or("row")
-                .to_string(),
-            ridge,
-            max_sweeps: base.l0.max_sweeps,
-            layer_seconds: base.l0.max_seconds,
-            threads: base.threads,
-            only: cfg.globs.0.clone(),
-            skip: cfg.globs.1.clone(),
-            keep_models: cfg.keep_models,
-            focus: cfg.focus.clone().or_else(|| default_focus(&cfg.targets)).unwrap_or_default(),
-            eval_text: None,
-        },
+        settings: settings(cfg, None),
         layers,
         runs,
         notice: VALIDATION_NOTICE.to_string(),
@@ -670,10 +645,6 @@ fn compare_text(
     std::fs::create_dir_all(&cfg.out_dir).map_err(|e| {
         Error::input(format!("--out-dir {}: cannot create it: {e}", cfg.out_dir.display()))
     })?;
-    let ridge = match base.ridge {
-        Ridge::Fixed(a) => serde_json::json!(a),
-        Ridge::Auto { .. } => serde_json::json!("auto"),
-    };
     let mut comp = Comparison {
         format: data::FORMAT.to_string(),
         format_version: data::FORMAT_VERSION,
@@ -696,28 +667,7 @@ fn compare_text(
                 }
             ),
         },
-        settings: CompareSettings {
-            methods: cfg.methods.iter().map(|m| m.name().to_string()).collect(),
-            targets: cfg.targets.iter().map(|p| data::target_key(*p)).collect(),
-            scope: cfg
-                .targets
-                .iter()
-                .find_map(|p| match p {
-                    Pattern::Unstructured { .. } => Some(data::scope_name(*p)),
-                    Pattern::NofM { .. } => None,
-                })
-                .unwrap_or("row")
-                .to_string(),
-            ridge,
-            max_sweeps: base.l0.max_sweeps,
-            layer_seconds: base.l0.max_seconds,
-            threads: base.threads,
-            only: cfg.globs.0.clone(),
-            skip: cfg.globs.1.clone(),
-            keep_models: cfg.keep_models,
-            focus: cfg.focus.clone().or_else(|| default_focus(&cfg.targets)).unwrap_or_default(),
-            eval_text: cfg.eval_text.as_ref().map(|p| p.display().to_string()),
-        },
+        settings: settings(cfg, cfg.eval_text.as_deref()),
         layers: Vec::new(),
         runs,
         notice: VALIDATION_NOTICE.to_string(),
@@ -854,4 +804,34 @@ fn measure_speed(
         }
     }
     Ok(())
+}
+
+/// The settings block of the record.
+fn settings(cfg: &CompareConfig, eval_text: Option<&Path>) -> CompareSettings {
+    let base = &cfg.base;
+    CompareSettings {
+        methods: cfg.methods.iter().map(|m| m.name().to_string()).collect(),
+        targets: cfg.targets.iter().map(|p| data::target_key(*p)).collect(),
+        scope: cfg
+            .targets
+            .iter()
+            .find_map(|p| match p {
+                Pattern::Unstructured { .. } => Some(data::scope_name(*p)),
+                Pattern::NofM { .. } => None,
+            })
+            .unwrap_or("row")
+            .to_string(),
+        ridge: match base.ridge {
+            Ridge::Fixed(a) => serde_json::json!(a),
+            Ridge::Auto { .. } => serde_json::json!("auto"),
+        },
+        max_sweeps: base.l0.max_sweeps,
+        layer_seconds: base.l0.max_seconds,
+        threads: base.threads,
+        only: cfg.globs.0.clone(),
+        skip: cfg.globs.1.clone(),
+        keep_models: cfg.keep_models,
+        focus: cfg.focus.clone().or_else(|| default_focus(&cfg.targets)).unwrap_or_default(),
+        eval_text: eval_text.map(|p| p.display().to_string()),
+    }
 }

@@ -122,8 +122,8 @@ pub fn evaluate(
     opts: &EvalOptions,
 ) -> Result<EvalSummary, Error> {
     let (a, b) = networks(dense, replace)?;
-    let dir = dense.layout().root();
-    let tok = load_tokenizer(dir)?;
+    let dir = arch::model_dir(dense);
+    let tok = load_tokenizer(&dir)?;
     let text = read_text(&opts.text)?;
     let shown = opts.text.display().to_string();
     match a.kind() {
@@ -149,7 +149,7 @@ pub fn evaluate(
             encoder_summary(a.as_ref(), b.as_ref(), &seqs, shown)
         }
         Kind::Decoder => {
-            let framing = Framing::for_network(a.family(), &tok, dir)?;
+            let framing = Framing::for_network(a.family(), &tok, &dir)?;
             let max = a.max_positions().unwrap_or(usize::MAX);
             let seq_len = opts.seq_len.unwrap_or(256).min(max);
             let content = seq_len.saturating_sub(framing.len());

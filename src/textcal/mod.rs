@@ -164,9 +164,9 @@ pub fn windows(
     net: &dyn Network,
     src: &TextSource,
 ) -> Result<(Vec<Vec<u32>>, usize), Error> {
-    let dir = model.layout().root();
-    let tok = load_tokenizer(dir)?;
-    let framing = Framing::for_network(net.family(), &tok, dir)?;
+    let dir = arch::model_dir(model);
+    let tok = load_tokenizer(&dir)?;
+    let framing = Framing::for_network(net.family(), &tok, &dir)?;
     let (def_n, def_l) = default_shape(net.kind());
     let samples = src.samples.unwrap_or(def_n);
     let seq_len = src.seq_len.unwrap_or(def_l);
@@ -324,7 +324,7 @@ pub fn run(
         "seed": src.seed,
         "holdout_samples": held,
         "propagate": src.propagate,
-        "model_type": arch::ArchConfig::read(model.layout().root()).map(|c| c.model_type).unwrap_or_default(),
+        "model_type": arch::ArchConfig::read(&arch::model_dir(model)).map(|c| c.model_type).unwrap_or_default(),
     });
     Ok(TextRun { replaced, solved, description, timing })
 }
