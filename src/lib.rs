@@ -12,6 +12,10 @@
 //! activations to Gram matrices → [`solve`] prunes each layer →
 //! [`report`] describes the result, and [`io`] writes the pruned model.
 //! [`pipeline`] runs that chain; [`cli`] is the command-line front end.
+//! After pruning, [`sparse`] stores pruned weights sparse and multiplies
+//! with them, and [`deploy`] packs a pruned model's layers into a `.sprig`
+//! file (`lopper pack`) and times them against the dense product (`lopper
+//! speed`).
 //!
 //! ```
 //! use faer::{Mat, Par};
