@@ -162,7 +162,7 @@ mod tests {
     fn splitmix_matches_the_published_sequence() {
         // Reference outputs for seed 1234567 of the published SplitMix64
         // C code (Vigna, prng.di.unimi.it/splitmix64.c), as printed by a
-        // separate Python transcription of it.
+        // separate Python port of it.
         let mut r = SplitMix64(1234567);
         let want: [u64; 3] = [6457827717110365317, 3203168211198807973, 9817491932198370423];
         for w in want {
