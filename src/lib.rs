@@ -53,6 +53,7 @@ pub mod evaluate;
 pub mod io;
 pub mod pipeline;
 pub mod report;
+pub mod rng;
 pub mod select;
 pub mod solve;
 pub mod sparse;
