@@ -19,65 +19,11 @@ use std::time::Instant;
 
 use serde::Serialize;
 
+use crate::error::{Error, ErrorKind};
 use crate::io::{self, Model, PackedLayer, TensorInfo};
 use crate::select::Selection;
 use crate::sparse::{dense_matmul, DenseKernel, Par, SparseWeight};
 
-/// What went wrong.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-#[non_exhaustive]
-pub enum ErrorKind {
-    /// Bad input: files, tensors, options (exit code 2).
-    Input,
-    /// Writing the output failed (exit code 1).
-    Output,
-    /// A sparse product disagreed with the dense one (a bug; exit code 1).
-    Mismatch,
-}
-
-/// A failure of [`pack`] or [`measure`]: one line naming its object.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct Error {
-    kind: ErrorKind,
-    message: String,
-}
-
-impl Error {
-    fn new(kind: ErrorKind, message: impl Into<String>) -> Self {
-        Error { kind, message: message.into() }
-    }
-
-    /// What went wrong.
-    pub fn kind(&self) -> ErrorKind {
-        self.kind
-    }
-}
-
-impl std::fmt::Display for Error {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str(&self.message)
-    }
-}
-
-impl std::error::Error for Error {}
-
-impl From<io::LoadError> for Error {
-    fn from(e: io::LoadError) -> Self {
-        Error::new(ErrorKind::Input, e.to_string())
-    }
-}
-
-impl From<io::WriteError> for Error {
-    fn from(e: io::WriteError) -> Self {
-        let kind = match e.kind() {
-            io::WriteErrorKind::WouldOverwriteInput | io::WriteErrorKind::BadOutput => {
-                ErrorKind::Input
-            }
-            _ => ErrorKind::Output,
-        };
-        Error::new(kind, e.to_string())
-    }
-}
 
 /// The `N:M` pattern recorded in the model's `lopper.pattern` metadata, if
 /// any file of the model has one that parses.
@@ -99,7 +45,7 @@ pub fn pruned_layers<'a>(model: &'a Model, sel: &Selection) -> Result<Vec<&'a Te
     let names: Vec<&str> = all.iter().map(|t| t.name.as_str()).collect();
     if let Some(g) = sel.unmatched_only(&names).first() {
         return Err(Error::new(
-            ErrorKind::Input,
+            ErrorKind::Usage,
             format!("--only '{g}' matches no tensor in {}", model.layout().root().display()),
         ));
     }
@@ -150,25 +96,10 @@ pub fn pack(
     out: &Path,
     progress: &dyn Fn(usize, usize, &str),
 ) -> Result<Vec<PackedLayer>, Error> {
-    let canon = |p: &Path| -> std::path::PathBuf {
-        match (p.parent(), p.file_name()) {
-            (Some(d), Some(f)) => {
-                let d = if d.as_os_str().is_empty() { Path::new(".") } else { d };
-                d.canonicalize().map(|d| d.join(f)).unwrap_or_else(|_| p.to_owned())
-            }
-            _ => p.to_owned(),
-        }
-    };
-    let target = canon(out);
-    if model.input_files().contains(&target) || canon(model.layout().root()) == target {
-        return Err(Error::new(
-            ErrorKind::Input,
-            format!("-o {}: refusing to overwrite an input file", out.display()),
-        ));
-    }
+    crate::outputs::check_distinct(&crate::outputs::input_files(model, &[]), &[("-o", out)])?;
     if out.is_dir() {
         return Err(Error::new(
-            ErrorKind::Input,
+            ErrorKind::Usage,
             format!(
                 "-o {}: is a directory; expected a file name such as model.sprig",
                 out.display()

@@ -7,15 +7,18 @@
 //! command-line tool (`lopper inspect`, `lopper prune`) wraps the same
 //! library calls; see the README for its use.
 //!
-//! Data flows along the modules: [`io`] reads safetensors models and
-//! activations → [`select`] picks the prunable layers → [`calib`] reduces
-//! activations to Gram matrices → [`solve`] prunes each layer →
-//! [`report`] describes the result, and [`io`] writes the pruned model.
-//! [`pipeline`] runs that chain; [`cli`] is the command-line front end.
+//! Data flows one way: [`cli`] parses flags into configs → [`driver`]
+//! (and [`compare`], the driver with several runs) loops over the blocks of
+//! a [`source`] (an activations file via [`io`], or the model's own forward
+//! pass from [`arch`] over windows cut by [`tokenize`]), reduces inputs to
+//! Gram matrices with [`calib`], prunes each selected layer ([`select`])
+//! with [`solve`], and hands the results to [`report`] and [`io`]'s writer;
+//! [`evaluate`] compares a pruned model with its dense original on text.
 //! After pruning, [`sparse`] stores pruned weights sparse and multiplies
 //! with them, and [`deploy`] packs a pruned model's layers into a `.sprig`
 //! file (`lopper pack`) and times them against the dense product (`lopper
-//! speed`).
+//! speed`). Every failure above the readers and solvers is an [`Error`]
+//! whose [`ErrorKind`] fixes the exit code.
 //!
 //! ```
 //! use faer::{Mat, Par};
@@ -49,12 +52,20 @@ pub mod calib;
 pub mod cli;
 pub mod compare;
 pub mod deploy;
+pub mod driver;
+pub mod error;
 pub mod evaluate;
 pub mod io;
-pub mod pipeline;
+pub mod outputs;
 pub mod report;
 pub mod rng;
 pub mod select;
 pub mod solve;
+pub mod source;
 pub mod sparse;
-pub mod textcal;
+pub mod tokenize;
+
+pub use driver::{prune, JobConfig, PruneConfig, Ridge, Target};
+pub use error::{Error, ErrorKind, Result};
+pub use solve::{Method, Pattern, Scope};
+pub use source::Calibration;

@@ -1,6 +1,11 @@
-//! Raw command-line flags (clap). Validation into a config happens in
-//! [`super::config`].
+//! Raw command-line flags (clap). Flags that several commands share are
+//! defined once, as groups flattened into each command: [`SelectionArgs`],
+//! [`CalibrationArgs`], [`SolverArgs`] and [`RunArgs`]. Validation into
+//! typed configs happens in [`super::config`].
 
+use crate::driver::Ridge;
+use crate::solve::{Method, Scope};
+use clap::builder::PossibleValue;
 use clap::{ArgGroup, Args, Parser, Subcommand, ValueEnum};
 use std::path::PathBuf;
 
@@ -34,6 +39,203 @@ pub enum Command {
     Speed(SpeedArgs),
     /// Write a pruned model's sparse layers to a compact .sprig file.
     Pack(PackArgs),
+}
+
+impl ValueEnum for Method {
+    fn value_variants<'a>() -> &'a [Self] {
+        &Method::ALL
+    }
+
+    fn to_possible_value(&self) -> Option<PossibleValue> {
+        let help = match self {
+            Method::Magnitude => "Keep the largest |w|",
+            Method::Scaled => "Keep the largest |w|·‖x_j‖ (input-norm scaled magnitude)",
+            Method::Obs => "One-shot Optimal Brain Surgeon column sweep",
+            Method::L0 => "L0-constrained ridge least squares by local search",
+        };
+        Some(PossibleValue::new(self.name()).help(help))
+    }
+}
+
+impl ValueEnum for Scope {
+    fn value_variants<'a>() -> &'a [Self] {
+        &[Scope::Row, Scope::Layer]
+    }
+
+    fn to_possible_value(&self) -> Option<PossibleValue> {
+        let help = match self {
+            Scope::Row => "Every output row keeps the same number of weights",
+            Scope::Layer => "One budget for the whole layer",
+        };
+        Some(PossibleValue::new(self.name()).help(help))
+    }
+}
+
+/// Which tensors a command works on.
+#[derive(Debug, Args, Clone)]
+pub struct SelectionArgs {
+    /// Only 2-D float tensors whose name matches GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub only: Vec<String>,
+    /// Leave out tensors whose name matches GLOB (repeatable).
+    #[arg(long, value_name = "GLOB")]
+    pub skip: Vec<String>,
+}
+
+/// Where the calibration inputs come from, and held-out text.
+#[derive(Debug, Args)]
+#[command(group(ArgGroup::new("calibration").required(true).args(["activations", "text"])))]
+pub struct CalibrationArgs {
+    /// Safetensors file of calibration inputs: per pruned layer, a tensor
+    /// named like its weight, shape [rows, d_in].
+    #[arg(long, value_name = "FILE")]
+    pub activations: Option<PathBuf>,
+    /// UTF-8 calibration text, run through the model itself (MODEL must be a
+    /// directory with config.json and tokenizer.json; model types bert,
+    /// llama, mistral, qwen2, gpt2).
+    #[arg(long, value_name = "FILE")]
+    pub text: Option<PathBuf>,
+    /// Text calibration: number of token windows drawn from the text
+    /// [default: 128]
+    #[arg(long, value_name = "N")]
+    pub samples: Option<usize>,
+    /// Text calibration: tokens per window, special tokens included
+    /// [default: 128 for encoders, 256 for decoders]
+    #[arg(long, value_name = "L")]
+    pub seq_len: Option<usize>,
+    /// Text calibration: seed for drawing the windows [default: 0]
+    #[arg(long, value_name = "SEED")]
+    pub seed: Option<u64>,
+    /// Text calibration: collect every block's inputs from the dense model
+    /// instead of from the already pruned blocks before it (compare: every
+    /// run then shares one pass).
+    #[arg(long)]
+    pub no_propagate: bool,
+    /// Fraction of activation rows (text: of token windows) held out from
+    /// the solver to measure overfitting, in [0, 1).
+    #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]
+    pub holdout: f64,
+    /// After pruning, compare the pruned model with the dense one on this
+    /// held-out text (as `lopper eval` does; MODEL must be a directory with
+    /// config.json and tokenizer.json) and add the end-to-end figures.
+    #[arg(long, value_name = "FILE")]
+    pub eval_text: Option<PathBuf>,
+}
+
+/// How each layer is solved, apart from method and target.
+#[derive(Debug, Args)]
+pub struct SolverArgs {
+    /// Where an unstructured sparsity budget applies.
+    #[arg(long, value_enum, default_value = "row")]
+    pub scope: Scope,
+    /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto`: per layer, the α in
+    /// {0.01, 0.03, 0.1, 0.3, 1} with the lowest error on the held-out rows
+    /// [default: auto, or 0.01 for a layer without held-out rows]
+    #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
+    pub ridge: Option<String>,
+    /// Local search: most swap sweeps per layer [default: 20]
+    #[arg(long, value_name = "N")]
+    pub max_sweeps: Option<usize>,
+    /// Local search: most seconds per layer, checked between sweeps
+    /// [default: no limit]
+    #[arg(long, value_name = "SECS")]
+    pub layer_seconds: Option<f64>,
+}
+
+/// How the process runs.
+#[derive(Debug, Args)]
+pub struct RunArgs {
+    /// Worker threads (0 = all cores).
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub threads: usize,
+    /// Print nothing but errors (no progress bar, no table).
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// `lopper prune`.
+#[derive(Debug, Args)]
+#[command(group(ArgGroup::new("target").required(true).args(["sparsity", "pattern"])))]
+pub struct PruneArgs {
+    /// A .safetensors file, a *.safetensors.index.json, or a model directory.
+    pub model: PathBuf,
+    /// Fraction of weights to zero, in [0, 1).
+    #[arg(long, value_name = "S", allow_negative_numbers = true)]
+    pub sparsity: Option<f64>,
+    /// N:M pattern instead of --sparsity: at most N nonzeros in each group of
+    /// M consecutive inputs of a row (e.g. 2:4).
+    #[arg(long, value_name = "N:M", conflicts_with_all = ["sparsity", "scope"])]
+    pub pattern: Option<String>,
+    /// Solver.
+    #[arg(long, value_enum, default_value = "l0")]
+    pub method: Method,
+    /// Output: a .safetensors file for a single-file model, a directory for
+    /// a sharded model or a model directory.
+    #[arg(short = 'o', long = "output", value_name = "OUT")]
+    pub output: PathBuf,
+    /// Also write the report as JSON to FILE.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+    /// Write the local-search objective after every sweep as JSON lines.
+    #[arg(long, value_name = "FILE")]
+    pub trace: Option<PathBuf>,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub calibration: CalibrationArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub solver: SolverArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub selection: SelectionArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub run: RunArgs,
+}
+
+/// `lopper compare`.
+#[derive(Debug, Args)]
+pub struct CompareArgs {
+    /// A .safetensors file, a *.safetensors.index.json, or a model directory.
+    pub model: PathBuf,
+    /// Unstructured targets, fractions of zeros in [0, 1), comma-separated
+    /// [default: 0.5,0.7,0.9 when --patterns is not given either]
+    #[arg(long, value_name = "S,S,...", value_delimiter = ',', allow_negative_numbers = true)]
+    pub sparsities: Vec<f64>,
+    /// N:M pattern targets, comma-separated (e.g. 2:4,4:8).
+    #[arg(long, value_name = "N:M,...", value_delimiter = ',')]
+    pub patterns: Vec<String>,
+    /// Methods to run, comma-separated.
+    #[arg(long, value_enum, value_delimiter = ',', default_value = "magnitude,scaled,obs,l0")]
+    pub methods: Vec<Method>,
+    /// Folder for comparison.json, comparison.html and, with --keep-models,
+    /// models/<method>-<target>/.
+    #[arg(long, value_name = "DIR")]
+    pub out_dir: PathBuf,
+    /// Also write every run's pruned model under DIR/models/.
+    #[arg(long)]
+    pub keep_models: bool,
+    /// With --keep-models: time every run's pruned layers, dense against
+    /// sparse kernels, at this batch size (as `lopper speed` does) and add a
+    /// speed column to the page.
+    #[arg(long, value_name = "B")]
+    pub speed_batch: Option<usize>,
+    /// Target for the per-layer chart (one of the sparsities or patterns)
+    /// [default: the highest sparsity, else the first pattern]
+    #[arg(long, value_name = "S|N:M")]
+    pub focus: Option<String>,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub calibration: CalibrationArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub solver: SolverArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub selection: SelectionArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub run: RunArgs,
 }
 
 /// `lopper eval`.
@@ -71,211 +273,9 @@ pub struct InspectArgs {
     /// Print JSON instead of a table.
     #[arg(long)]
     pub json: bool,
-    /// Treat only 2-D float tensors matching GLOB as prunable (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub only: Vec<String>,
-    /// Never treat tensors matching GLOB as prunable (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub skip: Vec<String>,
-}
-
-/// Solver choice on the command line.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
-pub enum MethodArg {
-    /// Keep the largest |w|.
-    Magnitude,
-    /// Keep the largest |w|·‖x_j‖ (input-norm scaled magnitude).
-    Scaled,
-    /// One-shot Optimal Brain Surgeon column sweep.
-    Obs,
-    /// L0-constrained ridge least squares by local search.
-    L0,
-}
-
-/// Where an unstructured budget applies.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
-pub enum ScopeArg {
-    /// Every output row keeps the same number of weights.
-    Row,
-    /// One budget for the whole layer.
-    Layer,
-}
-
-/// `lopper prune`.
-#[derive(Debug, Args)]
-#[command(group(ArgGroup::new("target").required(true).args(["sparsity", "pattern"])))]
-#[command(group(ArgGroup::new("calibration").required(true).args(["activations", "text"])))]
-pub struct PruneArgs {
-    /// A .safetensors file, a *.safetensors.index.json, or a model directory.
-    pub model: PathBuf,
-    /// Safetensors file of calibration inputs: per pruned layer, a tensor
-    /// named like its weight, shape [rows, d_in].
-    #[arg(long, value_name = "FILE")]
-    pub activations: Option<PathBuf>,
-    /// UTF-8 calibration text, run through the model itself (MODEL must be a
-    /// directory with config.json and tokenizer.json; model types bert,
-    /// llama, mistral, qwen2, gpt2).
-    #[arg(long, value_name = "FILE")]
-    pub text: Option<PathBuf>,
-    /// Text calibration: number of token windows drawn from the text
-    /// [default: 128]
-    #[arg(long, value_name = "N")]
-    pub samples: Option<usize>,
-    /// Text calibration: tokens per window, special tokens included
-    /// [default: 128 for encoders, 256 for decoders]
-    #[arg(long, value_name = "L")]
-    pub seq_len: Option<usize>,
-    /// Text calibration: seed for drawing the windows [default: 0]
-    #[arg(long, value_name = "SEED")]
-    pub seed: Option<u64>,
-    /// Text calibration: collect every block's inputs from the dense model
-    /// instead of from the already pruned blocks before it.
-    #[arg(long)]
-    pub no_propagate: bool,
-    /// After pruning, compare the pruned model with the dense one on this
-    /// held-out text (as `lopper eval` does) and add it to the report.
-    #[arg(long, value_name = "FILE")]
-    pub eval_text: Option<PathBuf>,
-    /// Fraction of weights to zero, in [0, 1).
-    #[arg(long, value_name = "S", allow_negative_numbers = true)]
-    pub sparsity: Option<f64>,
-    /// N:M pattern instead of --sparsity: at most N nonzeros in each group of
-    /// M consecutive inputs of a row (e.g. 2:4).
-    #[arg(long, value_name = "N:M", conflicts_with_all = ["sparsity", "scope"])]
-    pub pattern: Option<String>,
-    /// Where the --sparsity budget applies.
-    #[arg(long, value_enum, default_value = "row")]
-    pub scope: ScopeArg,
-    /// Solver.
-    #[arg(long, value_enum, default_value = "l0")]
-    pub method: MethodArg,
-    /// Output: a .safetensors file for a single-file model, a directory for
-    /// a sharded model or a model directory.
-    #[arg(short = 'o', long = "output", value_name = "OUT")]
-    pub output: PathBuf,
-    /// Also write the report as JSON to FILE.
-    #[arg(long, value_name = "FILE")]
-    pub report: Option<PathBuf>,
-    /// Write the local-search objective after every sweep as JSON lines.
-    #[arg(long, value_name = "FILE")]
-    pub trace: Option<PathBuf>,
-    /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto`: per layer, the α in
-    /// {0.01, 0.03, 0.1, 0.3, 1} with the lowest error on the held-out rows
-    /// [default: auto, or 0.01 for a layer without held-out rows]
-    #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
-    pub ridge: Option<String>,
-    /// Fraction of activation rows (text: of token windows) held out from
-    /// the solver to measure overfitting, in [0, 1).
-    #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]
-    pub holdout: f64,
-    /// Prune only 2-D float tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub only: Vec<String>,
-    /// Do not prune tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub skip: Vec<String>,
-    /// Local search: most swap sweeps per layer [default: 20]
-    #[arg(long, value_name = "N")]
-    pub max_sweeps: Option<usize>,
-    /// Local search: most seconds per layer, checked between sweeps
-    /// [default: no limit]
-    #[arg(long, value_name = "SECS")]
-    pub layer_seconds: Option<f64>,
-    /// Worker threads (0 = all cores).
-    #[arg(long, value_name = "N", default_value_t = 0)]
-    pub threads: usize,
-    /// Print nothing but errors.
-    #[arg(long, short = 'q')]
-    pub quiet: bool,
-}
-
-/// `lopper compare`.
-#[derive(Debug, Args)]
-#[command(group(ArgGroup::new("calibration").required(true).args(["activations", "text"])))]
-pub struct CompareArgs {
-    /// A .safetensors file, a *.safetensors.index.json, or a model directory.
-    pub model: PathBuf,
-    /// Safetensors file of calibration inputs: per pruned layer, a tensor
-    /// named like its weight, shape [rows, d_in]. Read once for all runs.
-    #[arg(long, value_name = "FILE")]
-    pub activations: Option<PathBuf>,
-    /// UTF-8 text to calibrate on through the model itself (not available
-    /// in compare yet).
-    #[arg(long, value_name = "FILE")]
-    pub text: Option<PathBuf>,
-    /// Text calibration: token windows drawn from the text [default: 128]
-    #[arg(long, value_name = "N")]
-    pub samples: Option<usize>,
-    /// Text calibration: tokens per window [default: 128 for encoders, 256
-    /// for decoders]
-    #[arg(long, value_name = "L")]
-    pub seq_len: Option<usize>,
-    /// Text calibration: seed for drawing the windows [default: 0]
-    #[arg(long, value_name = "SEED")]
-    pub seed: Option<u64>,
-    /// Text calibration: dense inputs for every block (the runs then share
-    /// the same calibration inputs).
-    #[arg(long)]
-    pub no_propagate: bool,
-    /// Unstructured targets, fractions of zeros in [0, 1), comma-separated
-    /// [default: 0.5,0.7,0.9 when --patterns is not given either]
-    #[arg(long, value_name = "S,S,...", value_delimiter = ',', allow_negative_numbers = true)]
-    pub sparsities: Vec<f64>,
-    /// N:M pattern targets, comma-separated (e.g. 2:4,4:8).
-    #[arg(long, value_name = "N:M,...", value_delimiter = ',')]
-    pub patterns: Vec<String>,
-    /// Where the --sparsities budgets apply.
-    #[arg(long, value_enum, default_value = "row")]
-    pub scope: ScopeArg,
-    /// Methods to run, comma-separated.
-    #[arg(long, value_enum, value_delimiter = ',', default_value = "magnitude,scaled,obs,l0")]
-    pub methods: Vec<MethodArg>,
-    /// Folder for comparison.json, comparison.html and, with --keep-models,
-    /// models/<method>-<target>/.
-    #[arg(long, value_name = "DIR")]
-    pub out_dir: PathBuf,
-    /// Also write every run's pruned model under DIR/models/.
-    #[arg(long)]
-    pub keep_models: bool,
-    /// With --keep-models: time every run's pruned layers, dense against
-    /// sparse kernels, at this batch size (as `lopper speed` does) and add a
-    /// speed column to the page.
-    #[arg(long, value_name = "B")]
-    pub speed_batch: Option<usize>,
-    /// Target for the per-layer chart (one of the sparsities or patterns)
-    /// [default: the highest sparsity, else the first pattern]
-    #[arg(long, value_name = "S|N:M")]
-    pub focus: Option<String>,
-    /// Held-out text for end-to-end figures (not available in compare yet).
-    #[arg(long, value_name = "FILE")]
-    pub eval_text: Option<PathBuf>,
-    /// Ridge α (λ = α·mean(diag(XᵀX))), or `auto` (per layer and run, the α
-    /// in {0.01, 0.03, 0.1, 0.3, 1} with the lowest held-out error)
-    /// [default: auto, or 0.01 for a layer without held-out rows]
-    #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
-    pub ridge: Option<String>,
-    /// Fraction of activation rows held out from the solvers, in [0, 1).
-    #[arg(long, value_name = "F", default_value_t = 0.1, allow_negative_numbers = true)]
-    pub holdout: f64,
-    /// Prune only 2-D float tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub only: Vec<String>,
-    /// Do not prune tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub skip: Vec<String>,
-    /// Local search: most swap sweeps per layer [default: 20]
-    #[arg(long, value_name = "N")]
-    pub max_sweeps: Option<usize>,
-    /// Local search: most seconds per layer, checked between sweeps
-    /// [default: no limit]
-    #[arg(long, value_name = "SECS")]
-    pub layer_seconds: Option<f64>,
-    /// Worker threads (0 = all cores).
-    #[arg(long, value_name = "N", default_value_t = 0)]
-    pub threads: usize,
-    /// Print nothing but errors (no progress bar, no table).
-    #[arg(long, short = 'q')]
-    pub quiet: bool,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub selection: SelectionArgs,
 }
 
 /// `lopper speed`.
@@ -287,9 +287,6 @@ pub struct SpeedArgs {
     /// Batch sizes (rows of x in y = x Wᵀ), comma-separated.
     #[arg(long, value_name = "B,B,..", value_delimiter = ',', default_value = "1,8,64")]
     pub batch: Vec<usize>,
-    /// Worker threads (0 = all cores).
-    #[arg(long, value_name = "N", default_value_t = 0)]
-    pub threads: usize,
     /// Seconds of sampling per kernel and batch size, at least.
     #[arg(long, value_name = "SECS", default_value_t = 0.2, allow_negative_numbers = true)]
     pub min_time: f64,
@@ -301,15 +298,12 @@ pub struct SpeedArgs {
     /// Print JSON instead of a table.
     #[arg(long)]
     pub json: bool,
-    /// Time only 2-D float tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub only: Vec<String>,
-    /// Do not time tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub skip: Vec<String>,
-    /// No progress bar.
-    #[arg(long, short = 'q')]
-    pub quiet: bool,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub selection: SelectionArgs,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub run: RunArgs,
 }
 
 /// `lopper report`.
@@ -340,13 +334,61 @@ pub struct PackArgs {
     /// Output .sprig file (docs/pack-format.md).
     #[arg(short = 'o', long = "output", value_name = "FILE")]
     pub output: PathBuf,
-    /// Pack only 2-D float tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub only: Vec<String>,
-    /// Do not pack tensors matching GLOB (repeatable).
-    #[arg(long, value_name = "GLOB")]
-    pub skip: Vec<String>,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub selection: SelectionArgs,
     /// Print nothing but errors.
     #[arg(long, short = 'q')]
     pub quiet: bool,
+}
+
+/// Parse `--ridge` (for the validator; clap keeps the raw string so the
+/// message can name the flag).
+pub(super) fn parse_ridge(s: Option<&str>) -> Result<Ridge, String> {
+    match s {
+        None => Ok(Ridge::default()),
+        Some(s) => s.parse().map_err(|e| format!("--ridge {e}")),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    #[test]
+    fn flags_are_consistent() {
+        // clap's own consistency check over every command and group.
+        Cli::command().debug_assert();
+    }
+
+    #[test]
+    fn shared_flags_parse_the_same_in_prune_and_compare() {
+        let p = Cli::try_parse_from([
+            "lopper", "prune", "m", "--text", "t.txt", "--sparsity", "0.5", "-o", "o",
+            "--only", "a.*", "--threads", "3", "--method", "obs",
+        ])
+        .unwrap();
+        let c = Cli::try_parse_from([
+            "lopper", "compare", "m", "--text", "t.txt", "--out-dir", "o", "--only", "a.*",
+            "--threads", "3", "--methods", "obs,l0",
+        ])
+        .unwrap();
+        match (p.command, c.command) {
+            (Command::Prune(p), Command::Compare(c)) => {
+                assert_eq!(p.selection.only, c.selection.only);
+                assert_eq!(p.run.threads, c.run.threads);
+                assert_eq!(p.method, Method::Obs);
+                assert_eq!(c.methods, [Method::Obs, Method::L0]);
+            }
+            _ => panic!("wrong commands"),
+        }
+        // Calibration is required, and exclusive.
+        assert!(Cli::try_parse_from(["lopper", "compare", "m", "--out-dir", "o"]).is_err());
+        assert!(Cli::try_parse_from([
+            "lopper", "prune", "m", "--text", "t", "--activations", "a", "--sparsity", "0.5",
+            "-o", "o"
+        ])
+        .is_err());
+    }
 }

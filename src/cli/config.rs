@@ -1,28 +1,15 @@
-//! Turn raw flags into a validated [`PruneConfig`]. Every message names the
-//! option at fault.
+//! Raw flags → validated configs. One validator per flag group
+//! ([`job_config`] for what prune and compare share), so every command
+//! checks a flag the same way; every message names the option at fault.
 
-use super::args::{MethodArg, PruneArgs, ScopeArg};
+use super::args::{CalibrationArgs, CompareArgs, PruneArgs, SelectionArgs, SolverArgs};
+use crate::compare::{data, CompareConfig};
+use crate::driver::{JobConfig, PruneConfig, Target};
+use crate::error::{Error, Result};
 use crate::evaluate::EvalOptions;
-use crate::pipeline::{Calibration, PruneConfig, Ridge};
 use crate::select::Selection;
-use crate::solve::{L0Params, Method, Pattern, Scope};
-use crate::textcal::TextSource;
-
-/// α for layers that have no held-out rows to choose one with.
-pub const DEFAULT_RIDGE: f64 = 0.01;
-
-/// Parse `N:M`.
-pub fn parse_pattern(s: &str) -> Result<(usize, usize), String> {
-    let bad =
-        || format!("--pattern '{s}' is not of the form N:M with integers 0 < N <= M (e.g. 2:4)");
-    let (n, m) = s.split_once(':').ok_or_else(bad)?;
-    let (n, m): (usize, usize) =
-        (n.trim().parse().map_err(|_| bad())?, m.trim().parse().map_err(|_| bad())?);
-    if n == 0 || m == 0 || n > m {
-        return Err(bad());
-    }
-    Ok((n, m))
-}
+use crate::solve::{L0Params, Pattern};
+use crate::source::{Calibration, TextSource};
 
 /// Resolve `--threads 0` to the machine's cores.
 pub fn resolve_threads(n: usize) -> usize {
@@ -33,100 +20,169 @@ pub fn resolve_threads(n: usize) -> usize {
     }
 }
 
-/// Validate `args`.
-pub fn prune_config(args: &PruneArgs) -> Result<PruneConfig, String> {
-    let pattern = match (&args.pattern, args.sparsity) {
-        (Some(p), None) => {
-            let (n, m) = parse_pattern(p)?;
-            Pattern::NofM { n, m }
-        }
-        (None, Some(s)) => {
-            if !(0.0..1.0).contains(&s) {
-                return Err(format!("--sparsity {s} is outside [0, 1)"));
-            }
-            let scope = match args.scope {
-                ScopeArg::Row => Scope::Row,
-                ScopeArg::Layer => Scope::Layer,
-            };
-            Pattern::Unstructured { sparsity: s, scope }
-        }
-        _ => return Err("give exactly one of --sparsity and --pattern".into()),
-    };
-    let ridge = match args.ridge.as_deref().map(str::trim) {
-        None => Ridge::Auto { fallback: Some(DEFAULT_RIDGE) },
-        Some("auto") => Ridge::Auto { fallback: None },
-        Some(s) => match s.parse::<f64>() {
-            Ok(a) if a.is_finite() && a >= 0.0 => Ridge::Fixed(a),
-            _ => return Err(format!("--ridge '{s}' must be a number >= 0 or 'auto'")),
-        },
-    };
-    if !(0.0..1.0).contains(&args.holdout) {
-        return Err(format!("--holdout {} is outside [0, 1)", args.holdout));
-    }
-    if let Some(t) = args.layer_seconds {
-        if !(t.is_finite() && t > 0.0) {
-            return Err(format!("--layer-seconds {t} must be a positive number"));
+/// `--only` / `--skip`.
+pub fn selection(a: &SelectionArgs) -> Selection {
+    Selection { only: a.only.clone(), skip: a.skip.clone() }
+}
+
+/// `--samples` / `--seq-len`: at least 1 when given.
+pub fn check_counts(samples: Option<usize>, seq_len: Option<usize>) -> Result<()> {
+    for (flag, v) in [("--samples", samples), ("--seq-len", seq_len)] {
+        if v == Some(0) {
+            return Err(Error::usage(format!("{flag} must be at least 1")));
         }
     }
-    let method = match args.method {
-        MethodArg::Magnitude => Method::Magnitude,
-        MethodArg::Scaled => Method::Scaled,
-        MethodArg::Obs => Method::Obs,
-        MethodArg::L0 => Method::L0,
-    };
+    Ok(())
+}
+
+/// A `--focus` value as a target key, if it is one of `keys`.
+pub fn focus_key(f: &str, keys: &[String]) -> Result<String> {
+    let key = f.parse::<Pattern>().map(|p| p.to_string()).unwrap_or_default();
+    if keys.contains(&key) {
+        Ok(key)
+    } else {
+        Err(Error::usage(format!("--focus {f} is not one of the targets ({})", keys.join(", "))))
+    }
+}
+
+/// What prune and compare share: calibration, solver settings, selection,
+/// threads.
+fn job_config(
+    model: &std::path::Path,
+    c: &CalibrationArgs,
+    s: &SolverArgs,
+    sel: &SelectionArgs,
+    threads: usize,
+) -> Result<JobConfig> {
+    let ridge = super::args::parse_ridge(s.ridge.as_deref()).map_err(Error::usage)?;
+    if !(0.0..1.0).contains(&c.holdout) {
+        return Err(Error::usage(format!("--holdout {} is outside [0, 1)", c.holdout)));
+    }
     let mut l0 = L0Params::default();
-    if let Some(n) = args.max_sweeps {
+    if let Some(n) = s.max_sweeps {
         l0.max_sweeps = n;
     }
-    if args.layer_seconds.is_some() {
-        l0.max_seconds = args.layer_seconds;
-    }
-    for (flag, v) in [("--samples", args.samples), ("--seq-len", args.seq_len)] {
-        if v == Some(0) {
-            return Err(format!("{flag} must be at least 1"));
+    if let Some(t) = s.layer_seconds {
+        if !(t.is_finite() && t > 0.0) {
+            return Err(Error::usage(format!("--layer-seconds {t} must be a positive number")));
         }
+        l0.max_seconds = Some(t);
     }
-    if args.text.is_none() {
+    check_counts(c.samples, c.seq_len)?;
+    if c.text.is_none() {
         let text_only = [
-            ("--samples", args.samples.is_some()),
-            ("--seq-len", args.seq_len.is_some()),
-            ("--seed", args.seed.is_some()),
-            ("--no-propagate", args.no_propagate),
+            ("--samples", c.samples.is_some()),
+            ("--seq-len", c.seq_len.is_some()),
+            ("--seed", c.seed.is_some()),
+            ("--no-propagate", c.no_propagate),
         ];
         if let Some((flag, _)) = text_only.iter().find(|f| f.1) {
-            return Err(format!("{flag} applies to text calibration only: add --text FILE"));
+            return Err(Error::usage(format!(
+                "{flag} applies to text calibration only: add --text FILE"
+            )));
         }
     }
-    let calibration = match (&args.activations, &args.text) {
+    let calibration = match (&c.activations, &c.text) {
         (Some(a), None) => Calibration::Activations(a.clone()),
         (None, Some(t)) => Calibration::Text(TextSource {
             path: t.clone(),
-            samples: args.samples,
-            seq_len: args.seq_len,
-            seed: args.seed.unwrap_or(0),
-            propagate: !args.no_propagate,
+            samples: c.samples,
+            seq_len: c.seq_len,
+            seed: c.seed.unwrap_or(0),
+            propagate: !c.no_propagate,
         }),
-        _ => return Err("give exactly one of --activations and --text".into()),
+        _ => return Err(Error::usage("give exactly one of --activations and --text")),
     };
-    let eval = args.eval_text.as_ref().map(|t| EvalOptions {
+    let eval = c.eval_text.as_ref().map(|t| EvalOptions {
         text: t.clone(),
         samples: None,
-        seq_len: args.seq_len,
+        seq_len: c.seq_len,
     });
-    Ok(PruneConfig {
-        model: args.model.clone(),
+    Ok(JobConfig {
+        model: model.to_path_buf(),
         calibration,
-        eval,
-        output: args.output.clone(),
-        report: args.report.clone(),
-        trace: args.trace.clone(),
-        method,
-        pattern,
         ridge,
-        holdout: args.holdout,
-        selection: Selection { only: args.only.clone(), skip: args.skip.clone() },
-        threads: resolve_threads(args.threads),
+        holdout: c.holdout,
+        selection: selection(sel),
+        threads: resolve_threads(threads),
         l0,
+        trace: false,
+        eval,
+    })
+}
+
+/// Validate `lopper prune`.
+pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
+    let pattern = match (&a.pattern, a.sparsity) {
+        (Some(p), None) => Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--pattern {e}")))?,
+        (None, Some(s)) => Pattern::parse_sparsity(&s.to_string(), a.solver.scope)
+            .map_err(|e| Error::usage(format!("--sparsity {e}")))?,
+        _ => return Err(Error::usage("give exactly one of --sparsity and --pattern")),
+    };
+    let mut job = job_config(&a.model, &a.calibration, &a.solver, &a.selection, a.run.threads)?;
+    job.trace = a.trace.is_some();
+    Ok(PruneConfig {
+        job,
+        target: Target { method: a.method, pattern },
+        output: a.output.clone(),
+        report: a.report.clone(),
+        trace: a.trace.clone(),
+    })
+}
+
+/// Validate `lopper compare`.
+pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
+    let mut sparsities = a.sparsities.clone();
+    if sparsities.is_empty() && a.patterns.is_empty() {
+        sparsities = vec![0.5, 0.7, 0.9];
+    }
+    let mut targets = Vec::new();
+    let mut push = |p: Pattern, flag: &str| {
+        if targets.contains(&p) {
+            return Err(Error::usage(format!("{flag} lists {p} twice")));
+        }
+        targets.push(p);
+        Ok(())
+    };
+    for &s in &sparsities {
+        let p = Pattern::parse_sparsity(&s.to_string(), a.solver.scope)
+            .map_err(|e| Error::usage(format!("--sparsities: {e}")))?;
+        push(p, "--sparsities")?;
+    }
+    for p in &a.patterns {
+        let p = Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--patterns {e}")))?;
+        push(p, "--patterns")?;
+    }
+    let mut methods = Vec::new();
+    for &m in &a.methods {
+        if methods.contains(&m) {
+            return Err(Error::usage(format!("--methods lists {m} twice")));
+        }
+        methods.push(m);
+    }
+    let focus = match &a.focus {
+        None => None,
+        Some(f) => {
+            let keys: Vec<String> = targets.iter().map(|p| data::target_key(*p)).collect();
+            Some(focus_key(f, &keys)?)
+        }
+    };
+    if a.speed_batch.is_some() && !a.keep_models {
+        return Err(Error::usage("--speed-batch times the pruned models: add --keep-models"));
+    }
+    if a.speed_batch == Some(0) {
+        return Err(Error::usage("--speed-batch must be at least 1"));
+    }
+    let job = job_config(&a.model, &a.calibration, &a.solver, &a.selection, a.run.threads)?;
+    Ok(CompareConfig {
+        job,
+        methods,
+        targets,
+        out_dir: a.out_dir.clone(),
+        keep_models: a.keep_models,
+        speed_batch: a.speed_batch,
+        focus,
+        globs: (a.selection.only.clone(), a.selection.skip.clone()),
     })
 }
 
@@ -135,12 +191,12 @@ mod tests {
     use super::*;
 
     #[test]
-    fn patterns() {
-        assert_eq!(parse_pattern("2:4"), Ok((2, 4)));
-        assert_eq!(parse_pattern(" 1 : 8 "), Ok((1, 8)));
-        for bad in ["2", "4:2", "0:4", "a:b", "2:0", "2:4:8"] {
-            let e = parse_pattern(bad).unwrap_err();
-            assert!(e.contains("--pattern"), "{bad}: {e}");
-        }
+    fn focus_takes_either_kind_of_key() {
+        let keys = vec!["0.7".to_string(), "2:4".to_string()];
+        assert_eq!(focus_key("0.70", &keys).unwrap(), "0.7");
+        assert_eq!(focus_key(" 2:4", &keys).unwrap(), "2:4");
+        let e = focus_key("0.5", &keys).unwrap_err();
+        assert_eq!(e.to_string(), "--focus 0.5 is not one of the targets (0.7, 2:4)");
+        assert_eq!(e.exit_code(), 2);
     }
 }

@@ -2,9 +2,9 @@
 //! be pruned.
 
 use super::args::InspectArgs;
-use super::Failure;
+use super::config::selection;
+use crate::error::{Error, Result};
 use crate::io::Model;
-use crate::select::Selection;
 use serde::Serialize;
 
 #[derive(Serialize)]
@@ -33,21 +33,20 @@ struct Listing {
     totals: Totals,
 }
 
-pub(super) fn run(a: &InspectArgs) -> Result<(), Failure> {
-    let model = Model::open(&a.model).map_err(|e| Failure::usage(e.to_string()))?;
-    let sel = Selection { only: a.only.clone(), skip: a.skip.clone() };
+pub(super) fn run(a: &InspectArgs) -> Result<()> {
+    let model = Model::open(&a.model)?;
+    let sel = selection(&a.selection);
     let infos = model.tensors();
     let names: Vec<&str> = infos.iter().map(|t| t.name.as_str()).collect();
     if let Some(g) = sel.unmatched_only(&names).first() {
-        return Err(Failure::usage(format!(
+        return Err(Error::usage(format!(
             "--only '{g}' matches no tensor in {}",
             a.model.display()
         )));
     }
     let mut rows = Vec::with_capacity(infos.len());
     for t in &infos {
-        let zero_fraction =
-            model.zero_fraction(&t.name).map_err(|e| Failure::usage(e.to_string()))?;
+        let zero_fraction = model.zero_fraction(&t.name)?;
         rows.push(Row {
             name: t.name.clone(),
             dtype: format!("{:?}", t.dtype),

@@ -1,19 +1,22 @@
-//! The command-line front end: flags → config → pipeline, then printing.
+//! The command-line front end: flags → config → driver, then printing.
 //!
-//! Exit codes: 0 success, 2 usage or input error, 1 anything else, 130 when
-//! `lopper compare` was interrupted (what finished is kept). Errors are
-//! printed as one line, `lopper: error: …`, on stderr.
+//! Exit codes are the same in every command: 0 success; 2 for a usage or
+//! input error (the user's to fix); 1 for a failure on valid input (a
+//! solver, the disk, a kernel check), see [`crate::ErrorKind::exit_code`];
+//! 130 when `lopper compare` was interrupted (what finished is kept).
+//! Errors are printed as one line, `lopper: error: …`, on stderr.
 
 mod args;
 mod compare;
 mod config;
 mod inspect;
+mod progress;
 mod sparse;
 
-use crate::pipeline::{self, ErrorKind, Progress};
+use crate::driver::{self, Progress};
+use crate::error::{Error, Result};
 use args::{Cli, Command};
 use clap::Parser;
-use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
 /// Exit code for success.
 pub const EXIT_OK: i32 = 0;
@@ -24,22 +27,17 @@ pub const EXIT_USAGE: i32 = 2;
 /// Exit code after Ctrl-C (128 + SIGINT, the shell's convention).
 pub const EXIT_INTERRUPTED: i32 = 130;
 
-/// A front-end failure with its exit code.
-struct Failure {
-    code: i32,
-    message: String,
+/// How a command ended, when not with success.
+enum Failure {
+    /// An error; its kind gives the exit code.
+    Error(Error),
+    /// Stopped on request, with a message (exit code 130).
+    Interrupted(String),
 }
 
-impl Failure {
-    fn usage(message: impl Into<String>) -> Self {
-        Failure { code: EXIT_USAGE, message: message.into() }
-    }
-}
-
-impl From<pipeline::Error> for Failure {
-    fn from(e: pipeline::Error) -> Self {
-        let code = if e.kind() == ErrorKind::Input { EXIT_USAGE } else { EXIT_FAILURE };
-        Failure { code, message: e.to_string() }
+impl From<Error> for Failure {
+    fn from(e: Error) -> Self {
+        Failure::Error(e)
     }
 }
 
@@ -69,42 +67,36 @@ pub fn run() -> i32 {
         }
     };
     let result = match cli.command {
-        Command::Inspect(a) => inspect::run(&a),
-        Command::Prune(a) => prune(&a),
-        Command::Eval(a) => eval(&a),
+        Command::Inspect(a) => inspect::run(&a).map_err(Failure::from),
+        Command::Prune(a) => prune(&a).map_err(Failure::from),
+        Command::Eval(a) => eval(&a).map_err(Failure::from),
         Command::Compare(a) => compare::compare(&a),
-        Command::Report(a) => compare::report(&a),
-        Command::Speed(a) => sparse::speed(&a),
-        Command::Pack(a) => sparse::pack(&a),
+        Command::Report(a) => compare::report(&a).map_err(Failure::from),
+        Command::Speed(a) => sparse::speed(&a).map_err(Failure::from),
+        Command::Pack(a) => sparse::pack(&a).map_err(Failure::from),
     };
     match result {
         Ok(()) => EXIT_OK,
-        Err(f) => {
-            eprintln!("lopper: error: {}", f.message);
-            f.code
+        Err(Failure::Error(e)) => {
+            eprintln!("lopper: error: {e}");
+            e.exit_code()
+        }
+        Err(Failure::Interrupted(m)) => {
+            eprintln!("lopper: error: {m}");
+            EXIT_INTERRUPTED
         }
     }
 }
 
-fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
-    let cfg = config::prune_config(a).map_err(Failure::usage)?;
-    set_threads(cfg.threads);
-    let bar = if a.quiet {
-        ProgressBar::hidden()
-    } else {
-        ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr())
-    };
-    bar.set_style(
-        ProgressStyle::with_template(
-            "{spinner} pruning {pos}/{len} layers [{elapsed_precise}] {wide_msg}",
-        )
-        .expect("valid template"),
-    );
+fn prune(a: &args::PruneArgs) -> Result<()> {
+    let cfg = config::prune_config(a)?;
+    set_threads(cfg.job.threads);
+    let bar = progress::bar(a.run.quiet, "pruning", "layers");
     let on_progress = |p: Progress<'_>| match p {
         Progress::Start(n) => bar.set_length(n as u64),
-        Progress::Layer(i, name) => {
-            bar.set_position(i as u64);
-            bar.set_message(name.to_string());
+        Progress::Solve { done, layer, .. } => {
+            bar.set_position(done as u64);
+            bar.set_message(layer.to_string());
         }
         Progress::Evaluating => {
             bar.set_position(bar.length().unwrap_or(0));
@@ -114,11 +106,12 @@ fn prune(a: &args::PruneArgs) -> Result<(), Failure> {
             bar.set_position(bar.length().unwrap_or(0));
             bar.set_message("writing outputs");
         }
+        Progress::Statistics(_) | Progress::Done(_) => {}
     };
-    let report = pipeline::prune(&cfg, &on_progress);
+    let report = driver::prune(&cfg, &on_progress);
     bar.finish_and_clear();
     let report = report?;
-    if !a.quiet {
+    if !a.run.quiet {
         print!("{}", report.render_table());
         for o in &report.outputs {
             println!("wrote {o}");
@@ -136,15 +129,11 @@ fn set_threads(n: usize) {
     let _ = rayon::ThreadPoolBuilder::new().num_threads(n).build_global();
 }
 
-fn eval(a: &args::EvalArgs) -> Result<(), Failure> {
+fn eval(a: &args::EvalArgs) -> Result<()> {
     set_threads(config::resolve_threads(a.threads));
-    for (flag, v) in [("--samples", a.samples), ("--seq-len", a.seq_len)] {
-        if v == Some(0) {
-            return Err(Failure::usage(format!("{flag} must be at least 1")));
-        }
-    }
-    let dense = crate::io::Model::open(&a.dense).map_err(pipeline::Error::from)?;
-    let pruned = crate::io::Model::open(&a.pruned).map_err(pipeline::Error::from)?;
+    config::check_counts(a.samples, a.seq_len)?;
+    let dense = crate::io::Model::open(&a.dense)?;
+    let pruned = crate::io::Model::open(&a.pruned)?;
     let replace = crate::evaluate::pruned_weights(&dense, &pruned)?;
     let opts = crate::evaluate::EvalOptions {
         text: a.text.clone(),

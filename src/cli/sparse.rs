@@ -3,68 +3,47 @@
 
 use std::fmt::Write as _;
 
-use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
-
 use super::args::{PackArgs, SpeedArgs};
-use super::config::resolve_threads;
-use super::{Failure, EXIT_FAILURE, EXIT_USAGE};
-use crate::deploy::{self, ErrorKind, SpeedConfig, SpeedReport};
+use super::config::{resolve_threads, selection};
+use super::progress::bar;
+use crate::deploy::{self, SpeedConfig, SpeedReport};
+use crate::error::{Error, Result};
 use crate::io::Model;
-use crate::select::Selection;
 
 /// Bytes `--streamed` cycles through per weight.
 const STREAM_BYTES: usize = 512 << 20;
 
-impl From<deploy::Error> for Failure {
-    fn from(e: deploy::Error) -> Self {
-        let code = if e.kind() == ErrorKind::Input { EXIT_USAGE } else { EXIT_FAILURE };
-        Failure { code, message: e.to_string() }
-    }
-}
-
-fn bar(quiet: bool, verb: &str) -> ProgressBar {
-    let bar = if quiet {
-        ProgressBar::hidden()
-    } else {
-        ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr())
-    };
-    bar.set_style(
-        ProgressStyle::with_template(&format!(
-            "{{spinner}} {verb} {{pos}}/{{len}} layers [{{elapsed_precise}}] {{wide_msg}}"
-        ))
-        .expect("valid template"),
-    );
-    bar
-}
-
 /// Check the flags of `lopper speed`.
-fn speed_config(a: &SpeedArgs) -> Result<SpeedConfig, String> {
+fn speed_config(a: &SpeedArgs) -> Result<SpeedConfig> {
     if a.batch.is_empty() {
-        return Err("--batch needs at least one batch size".into());
+        return Err(Error::usage("--batch needs at least one batch size"));
     }
     if let Some(b) = a.batch.iter().find(|&&b| !(1..=65_536).contains(&b)) {
-        return Err(format!("--batch {b} is outside 1..=65536"));
+        return Err(Error::usage(format!("--batch {b} is outside 1..=65536")));
     }
     if !(a.min_time.is_finite() && a.min_time > 0.0 && a.min_time <= 60.0) {
-        return Err(format!("--min-time {} must be a number of seconds in (0, 60]", a.min_time));
+        return Err(Error::usage(format!(
+            "--min-time {} must be a number of seconds in (0, 60]",
+            a.min_time
+        )));
     }
     let mut batches = a.batch.clone();
     batches.sort_unstable();
     batches.dedup();
     Ok(SpeedConfig {
         batches,
-        threads: resolve_threads(a.threads),
+        threads: resolve_threads(a.run.threads),
         min_time: a.min_time,
-        selection: Selection { only: a.only.clone(), skip: a.skip.clone() },
+        selection: selection(&a.selection),
         stream_bytes: if a.streamed { STREAM_BYTES } else { 0 },
     })
 }
 
-pub(super) fn speed(a: &SpeedArgs) -> Result<(), Failure> {
-    let cfg = speed_config(a).map_err(Failure::usage)?;
+pub(super) fn speed(a: &SpeedArgs) -> Result<()> {
+    let cfg = speed_config(a)?;
     let _ = rayon::ThreadPoolBuilder::new().num_threads(cfg.threads).build_global();
-    let model = Model::open(&a.model).map_err(|e| Failure::usage(e.to_string()))?;
-    let bar = bar(a.quiet, "timing");
+    let model = Model::open(&a.model)?;
+    let bar = bar(a.run.quiet, "timing", "layers");
     let report = deploy::measure(&model, &cfg, &|done, total, name| {
         bar.set_length(total as u64);
         bar.set_position(done as u64);
@@ -80,10 +59,10 @@ pub(super) fn speed(a: &SpeedArgs) -> Result<(), Failure> {
     Ok(())
 }
 
-pub(super) fn pack(a: &PackArgs) -> Result<(), Failure> {
-    let model = Model::open(&a.model).map_err(|e| Failure::usage(e.to_string()))?;
-    let sel = Selection { only: a.only.clone(), skip: a.skip.clone() };
-    let bar = bar(a.quiet, "packing");
+pub(super) fn pack(a: &PackArgs) -> Result<()> {
+    let model = Model::open(&a.model)?;
+    let sel = selection(&a.selection);
+    let bar = bar(a.quiet, "packing", "layers");
     let packed = deploy::pack(&model, &sel, &a.output, &|done, total, name| {
         bar.set_length(total as u64);
         bar.set_position(done as u64);
@@ -257,8 +236,9 @@ mod tests {
         assert_eq!(c.stream_bytes, 0);
         assert!(parse(&["lopper", "speed", "m", "--batch", "0"])
             .unwrap_err()
+            .to_string()
             .contains("--batch 0"));
-        let e = parse(&["lopper", "speed", "m", "--min-time", "-1"]).unwrap_err();
+        let e = parse(&["lopper", "speed", "m", "--min-time", "-1"]).unwrap_err().to_string();
         assert!(e.contains("--min-time"), "{e}");
         assert_eq!(
             parse(&["lopper", "speed", "m", "--streamed"]).unwrap().stream_bytes,

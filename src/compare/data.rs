@@ -12,7 +12,7 @@
 //! ([`LayerReport`]), so figures mean the same thing in both files.
 
 use crate::report::{LayerReport, Report, Summary, VALIDATION_NOTICE};
-use crate::solve::{Method, Pattern, Scope};
+use crate::solve::{Method, Pattern};
 use serde::{Deserialize, Serialize};
 use std::path::Path;
 
@@ -202,10 +202,7 @@ impl Comparison {
 
 /// The key of a target: `0.5` for an unstructured sparsity, `2:4` for a pattern.
 pub fn target_key(p: Pattern) -> String {
-    match p {
-        Pattern::Unstructured { sparsity, .. } => format!("{sparsity}"),
-        Pattern::NofM { n, m } => format!("{n}:{m}"),
-    }
+    p.to_string()
 }
 
 /// The key as people read it: `70%`, `2:4`.
@@ -229,11 +226,7 @@ pub fn run_id(method: &str, key: &str) -> String {
 
 /// Scope name of a pattern (`row`, `layer`, `group`).
 pub fn scope_name(p: Pattern) -> &'static str {
-    match p {
-        Pattern::Unstructured { scope: Scope::Row, .. } => "row",
-        Pattern::Unstructured { scope: Scope::Layer, .. } => "layer",
-        Pattern::NofM { .. } => "group",
-    }
+    p.scope_name()
 }
 
 /// An empty run of `method` at `pattern`.
@@ -598,6 +591,7 @@ pub(crate) mod testing {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::solve::Scope;
 
     #[test]
     fn dates_match_known_timestamps() {

@@ -1,51 +1,51 @@
 //! `lopper compare`: every chosen method at every chosen target on the same
 //! calibration data, and the record and page that put them side by side.
 //!
-//! This module owns the comparison driver ([`compare`]), the
-//! `comparison.json` record ([`data`]), the HTML page ([`page`]) and the
-//! terminal summary ([`table`]). It reuses the prune pipeline's checks
-//! ([`crate::pipeline`]'s plan) and its per-layer step
-//! ([`pipeline::solve_layer`]), so a run here gives the same figures as
-//! `lopper prune` with the same method, target and settings.
+//! This module owns the comparison's configuration and its [`Sink`] (what
+//! happens to each solved layer and each finished run); the loop over
+//! layers is the prune driver's ([`crate::driver::drive`]) with the runs as
+//! a second dimension, so a run here gives the same figures as
+//! `lopper prune` with the same method, target and settings. Beside it:
+//! the `comparison.json` record ([`data`]), the HTML page ([`page`]), the
+//! terminal summary ([`table`]) and what is kept while running
+//! ([`checkpoint`]).
 //!
 //! Key decisions:
-//! - Layers are the outer loop. Each layer's activations are read once and
-//!   reduced to its Gram matrices, then every method × target is solved on
-//!   them; memory is one layer's statistics, as for `prune`. Runs therefore
-//!   all finish together at the last layer.
+//! - Shared statistics: with activations, or text without propagation,
+//!   each block's Gram matrices are built once and every run is solved on
+//!   them ([`data::INPUTS_SHARED`]). Sequential text calibration gives each
+//!   run its own pass over the model ([`data::INPUTS_OWN`]), since every
+//!   run's pruned blocks feed its next ones.
 //! - What finished is kept: after a solve, at most every
-//!   [`CHECKPOINT_SECONDS`], and at the end, `comparison.json` and
-//!   `comparison.html` are rewritten atomically (temp file + rename) with
-//!   every finished solve, status `running`. A stop request ([`Control`])
-//!   is honoured between solves: the files are written once more with status
-//!   `interrupted`, runs that finished every layer keep their models
-//!   (`--keep-models`), and the caller exits non-zero.
-//! - `--keep-models` parks each solved layer's weights, encoded in the
-//!   layer's dtype, in a hidden folder under `models/` until its run has
-//!   every layer, then writes the run's model with [`io::write_model`] and
-//!   removes the parked files. Without it no weights are written.
-//! - Text calibration (`Calibration::Text`) runs the model once per method ×
-//!   target: sequential calibration gives each run its own propagated inputs
-//!   ([`data::INPUTS_OWN`]), since every run's pruned blocks feed its next
-//!   ones. Runs are the outer loop there; a stop request is honoured between
-//!   runs, and `--eval-text` adds each run's end-to-end figures.
+//!   [`CHECKPOINT_SECONDS`], after each run and at the end,
+//!   `comparison.json` and `comparison.html` are rewritten atomically with
+//!   every finished solve. A stop request ([`Control`]) is honoured between
+//!   solves: the files are written once more with status `interrupted`,
+//!   runs that finished every layer keep their models (`--keep-models`),
+//!   and the caller exits non-zero.
+//! - `--keep-models` and `--eval-text` park each solved layer's weights
+//!   ([`checkpoint`]) until its run has every layer; then the run's model
+//!   is evaluated and written, and the parked files removed.
 
+mod checkpoint;
 pub mod data;
 pub mod page;
 mod svg;
 pub mod table;
 
-use crate::calib::{holdout_count, LayerGrams};
-use crate::io::{self, Model, TensorFile};
-use crate::pipeline::{self, Calibration, ErrorKind, PruneConfig, Ridge};
-use crate::report::VALIDATION_NOTICE;
+pub use checkpoint::Control;
+
+use crate::driver::{self, JobConfig, Progress, Sink, Solved, Target};
+use crate::error::{Error, Result};
+use crate::io::{self, Model};
+use crate::report::{PhaseTimes, VALIDATION_NOTICE};
 use crate::solve::{Method, Pattern};
-use data::{CalibrationInfo, CompareSettings, Comparison, LayerInfo, Run, Source, Status};
-use faer::{Mat, Par};
+use crate::source::{BlockStats, Calibration, Planned};
+use checkpoint::{write_checkpoint, Parking};
+use data::{CalibrationInfo, CompareSettings, Comparison, LayerInfo, Source, Status};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::Mutex;
+use std::sync::atomic::Ordering;
 use std::time::Instant;
 
 /// Least seconds between two checkpoint writes while solving.
@@ -59,10 +59,9 @@ pub const HTML_NAME: &str = "comparison.html";
 /// Everything a comparison needs, validated by the caller's flag parsing.
 #[derive(Clone, Debug)]
 pub struct CompareConfig {
-    /// Model, calibration, ridge, hold-out, selection, threads and local
-    /// search settings; `method`, `pattern`, `output`, `report` and `trace`
-    /// are ignored (each run sets its own method and pattern).
-    pub base: PruneConfig,
+    /// Model, calibration, ridge, hold-out, selection, threads, local
+    /// search settings and end-to-end evaluation, shared by every run.
+    pub job: JobConfig,
     /// Methods, in run order.
     pub methods: Vec<Method>,
     /// Targets, in run order.
@@ -76,90 +75,21 @@ pub struct CompareConfig {
     /// Target key for the per-layer chart (`None`: the highest sparsity, or
     /// the first target).
     pub focus: Option<String>,
-    /// Held-out text for end-to-end figures (refused until text evaluation lands).
-    pub eval_text: Option<PathBuf>,
     /// `--only` / `--skip` as given, for the record.
     pub globs: (Vec<String>, Vec<String>),
 }
 
-/// Shared between the driver and whoever may stop it (a signal handler).
-#[derive(Debug, Default)]
-pub struct Control {
-    /// Set to ask the driver to stop after the current solve.
-    pub stop: AtomicBool,
-    /// Held by the driver while it writes files; a handler that wants to
-    /// exit at once takes it first, so no file is left half-written.
-    pub writing: Mutex<()>,
-    /// Scratch folders to remove if the process exits without unwinding.
-    pub scratch: Mutex<Vec<PathBuf>>,
-}
-
-impl Control {
-    /// Remove the scratch folders (for a handler about to exit at once).
-    pub fn remove_scratch(&self) {
-        let dirs = self.scratch.lock().unwrap_or_else(|e| e.into_inner());
-        for d in dirs.iter() {
-            let _ = std::fs::remove_dir_all(d);
+impl CompareConfig {
+    /// The runs, method-major: every target of the first method, then the
+    /// next method's.
+    pub fn runs(&self) -> Vec<Target> {
+        let mut runs = Vec::with_capacity(self.methods.len() * self.targets.len());
+        for &method in &self.methods {
+            for &pattern in &self.targets {
+                runs.push(Target { method, pattern });
+            }
         }
-    }
-}
-
-/// Progress events for a front end.
-#[derive(Clone, Copy, Debug)]
-pub enum Progress<'a> {
-    /// This many solves (layers × runs) lie ahead.
-    Start(usize),
-    /// Reading the inputs of this layer and building its statistics.
-    Layer(&'a str),
-    /// Solving this layer for this run.
-    Solve(&'a str, &'a str),
-    /// This many solves are done.
-    Done(usize),
-    /// Writing pruned models.
-    Writing,
-}
-
-/// A comparison failure: one line naming its object.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct Error {
-    kind: ErrorKind,
-    message: String,
-}
-
-impl Error {
-    fn input(message: impl Into<String>) -> Self {
-        Error { kind: ErrorKind::Input, message: message.into() }
-    }
-
-    /// Whose fault ([`ErrorKind::Input`] means exit code 2).
-    pub fn kind(&self) -> ErrorKind {
-        self.kind
-    }
-}
-
-impl std::fmt::Display for Error {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str(&self.message)
-    }
-}
-
-impl std::error::Error for Error {}
-
-impl From<pipeline::Error> for Error {
-    fn from(e: pipeline::Error) -> Self {
-        Error { kind: e.kind(), message: e.to_string() }
-    }
-}
-
-impl From<io::LoadError> for Error {
-    fn from(e: io::LoadError) -> Self {
-        Error::input(e.to_string())
-    }
-}
-
-impl From<io::WriteError> for Error {
-    fn from(e: io::WriteError) -> Self {
-        Error { kind: ErrorKind::Output, message: e.to_string() }
+        runs
     }
 }
 
@@ -179,6 +109,300 @@ impl Outcome {
     }
 }
 
+/// Keeps the record, parks weights, evaluates and writes finished runs.
+struct Record<'a> {
+    cfg: &'a CompareConfig,
+    model: &'a Model,
+    control: &'a Control,
+    comp: Comparison,
+    /// Every selected layer, in record order.
+    planned: Vec<Planned>,
+    /// Layer name → index in `planned` and `comp.layers`.
+    index: BTreeMap<String, usize>,
+    parking: Option<Parking>,
+    outputs: Vec<PathBuf>,
+    last_checkpoint: Instant,
+    progress: &'a dyn Fn(Progress<'_>),
+}
+
+impl Record<'_> {
+    fn checkpoint(&mut self) -> Result<()> {
+        write_checkpoint(&self.cfg.out_dir, &self.comp, self.control)?;
+        self.last_checkpoint = Instant::now();
+        Ok(())
+    }
+
+    /// The parked weights of run `run`, in storage orientation by name.
+    fn weights(&self, run: usize) -> Result<BTreeMap<String, Vec<f64>>> {
+        let parking = self.parking.as_ref().expect("parked when models or evaluation are kept");
+        let mut replaced = BTreeMap::new();
+        for (li, layer) in self.planned.iter().enumerate() {
+            replaced.insert(layer.name.clone(), parking.fetch(run, li, layer.dtype)?);
+        }
+        Ok(replaced)
+    }
+
+    /// Write run `run`'s model under `models/<run id>/`: the file of a
+    /// single-file model, or the folder of a sharded or folder model.
+    fn write_model(&mut self, run: usize, replaced: &BTreeMap<String, Vec<f64>>) -> Result<()> {
+        (self.progress)(Progress::Writing);
+        let target = self.cfg.runs()[run];
+        let dir = self.cfg.out_dir.join("models").join(&self.comp.runs[run].id);
+        let out = match self.model.layout() {
+            io::Layout::File(p) => {
+                std::fs::create_dir_all(&dir).map_err(|e| {
+                    Error::output(&dir, format!("{}: cannot create it: {e}", dir.display()))
+                })?;
+                dir.join(p.file_name().unwrap_or_default())
+            }
+            _ => dir,
+        };
+        let meta = driver::model_meta(&self.cfg.job, target, self.planned.len());
+        let _guard = self.control.writing.lock().unwrap_or_else(|e| e.into_inner());
+        io::write_model(self.model, &out, replaced, &meta)?;
+        self.comp.runs[run].model_output = Some(out.display().to_string());
+        self.outputs.push(out);
+        Ok(())
+    }
+}
+
+impl Sink for Record<'_> {
+    fn statistics(&mut self, layers: &[Planned], stats: &BlockStats) {
+        for layer in layers {
+            let info = &mut self.comp.layers[self.index[&layer.name]];
+            if info.calibration_rows == 0 {
+                let g = &stats.grams[&layer.group];
+                info.calibration_rows = g.calib.rows();
+                info.holdout_rows = g.holdout.rows();
+                info.gram_seconds = stats.seconds / layers.len() as f64;
+            }
+        }
+    }
+
+    fn solved(&mut self, run: usize, layer: &Planned, s: Solved) -> Result<()> {
+        if let Some(p) = &self.parking {
+            let li = self.index[&layer.name];
+            p.park(run, li, &layer.to_storage(s.values), layer.dtype)?;
+        }
+        let r = &mut self.comp.runs[run];
+        r.layers.push(s.report);
+        r.resum();
+        if self.last_checkpoint.elapsed().as_secs_f64() >= CHECKPOINT_SECONDS {
+            self.checkpoint()?;
+        }
+        Ok(())
+    }
+
+    fn run_done(&mut self, run: usize, timing: Option<PhaseTimes>) -> Result<()> {
+        let r = &mut self.comp.runs[run];
+        r.complete = true;
+        if let (Some(t), data::INPUTS_OWN) = (timing, r.calibration_inputs.as_str()) {
+            r.summary.seconds = t.forward + t.gram + t.solve;
+        }
+        if self.parking.is_some() {
+            let replaced = self.weights(run)?;
+            if let Some(opts) = &self.cfg.job.eval {
+                (self.progress)(Progress::Evaluating);
+                let e = crate::evaluate::evaluate(self.model, &replaced, opts)?;
+                self.comp.runs[run].end_to_end = Some(end_to_end(&e));
+            }
+            if self.cfg.keep_models {
+                self.write_model(run, &replaced)?;
+            }
+        }
+        self.checkpoint()
+    }
+
+    fn stop_requested(&self) -> bool {
+        self.control.stop.load(Ordering::SeqCst)
+    }
+}
+
+/// Run every method at every target and write `comparison.json`,
+/// `comparison.html` and, with `keep_models`, the pruned models into
+/// `cfg.out_dir`.
+///
+/// A stop request ([`Control::stop`]) returns `Ok` with status
+/// [`Status::Interrupted`] after writing what finished.
+///
+/// # Errors
+/// Usage and input errors, found before any file is written.
+/// [`crate::ErrorKind::Solve`] or [`crate::ErrorKind::Output`] for failures
+/// while running; the files then hold what finished, with status `failed`.
+pub fn compare(
+    cfg: &CompareConfig,
+    progress: &dyn Fn(Progress<'_>),
+    control: &Control,
+) -> Result<Outcome> {
+    let created = data::utc_now();
+    let job = &cfg.job;
+    let targets = cfg.runs();
+    if targets.is_empty() {
+        return Err(Error::usage("nothing to compare: give --methods and a target"));
+    }
+    let eval_text = job.eval.as_ref().map(|e| e.text.as_path());
+    let (kind, inputs) = match &job.calibration {
+        Calibration::Activations(_) if eval_text.is_some() => {
+            return Err(Error::usage(format!(
+                "--eval-text {}: end-to-end figures need the model run on text; use --text \
+                 calibration, or leave --eval-text out to compare layer errors",
+                eval_text.expect("matched").display()
+            )));
+        }
+        Calibration::Activations(_) => ("activations", data::INPUTS_SHARED),
+        Calibration::Text(t) if t.propagate => ("text", data::INPUTS_OWN),
+        Calibration::Text(_) => ("text", data::INPUTS_SHARED),
+    };
+    let model = Model::open(&job.model)?;
+    let calib = job.calibration.path();
+    if let Some(t) = eval_text {
+        crate::tokenize::read_text(t)?;
+    }
+    if let Calibration::Text(t) = &job.calibration {
+        crate::tokenize::read_text(&t.path)?;
+    }
+    let source = driver::open_source(job, &targets, &model)?;
+    let mut read = vec![calib];
+    read.extend(eval_text);
+    check_out_dir(&cfg.out_dir, &crate::outputs::input_files(&model, &read))?;
+    std::fs::create_dir_all(&cfg.out_dir).map_err(|e| {
+        Error::usage(format!("--out-dir {}: cannot create it: {e}", cfg.out_dir.display()))
+    })?;
+
+    let planned: Vec<Planned> = source.blocks().iter().flatten().cloned().collect();
+    let layers = planned
+        .iter()
+        .map(|l| LayerInfo {
+            name: l.name.clone(),
+            shape: l.shape,
+            calibration_rows: 0,
+            holdout_rows: 0,
+            gram_seconds: 0.0,
+        })
+        .collect();
+    let description = match &job.calibration {
+        // Rows are known once statistics are built; see `describe_rows`.
+        Calibration::Activations(p) => format!("activations from {}", p.display()),
+        Calibration::Text(t) => format!(
+            "text from {}, run through the model ({})",
+            t.path.display(),
+            if t.propagate {
+                "sequential: each run calibrates on its own pruned blocks' outputs"
+            } else {
+                "dense inputs everywhere (--no-propagate), shared by every run"
+            }
+        ),
+    };
+    let comp = Comparison {
+        format: data::FORMAT.to_string(),
+        format_version: data::FORMAT_VERSION,
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        created,
+        status: Status::Running,
+        status_detail: None,
+        model: job.model.display().to_string(),
+        calibration: CalibrationInfo {
+            kind: kind.to_string(),
+            path: calib.display().to_string(),
+            holdout: job.holdout,
+            description,
+        },
+        settings: settings(cfg),
+        layers,
+        runs: targets.iter().map(|t| data::new_run(t.method, t.pattern, inputs)).collect(),
+        notice: VALIDATION_NOTICE.to_string(),
+    };
+    let parking = if cfg.keep_models || job.eval.is_some() {
+        let dir = cfg.out_dir.join("models").join(format!(".parked-{}", std::process::id()));
+        Some(Parking::create(dir, control)?)
+    } else {
+        None
+    };
+    let index = planned.iter().enumerate().map(|(i, l)| (l.name.clone(), i)).collect();
+    let mut record = Record {
+        cfg,
+        model: &model,
+        control,
+        comp,
+        planned,
+        index,
+        parking,
+        outputs: vec![cfg.out_dir.join(JSON_NAME), cfg.out_dir.join(HTML_NAME)],
+        last_checkpoint: Instant::now(),
+        progress,
+    };
+    let finish = driver::drive(job, &targets, &model, source, &mut record, progress);
+    let Record { mut comp, parking, mut outputs, .. } = record;
+    if kind == "activations" {
+        comp.calibration.description = describe_rows(calib, &comp.layers);
+    }
+    drop(parking);
+    if comp.runs.iter().all(|r| r.model_output.is_none()) {
+        // No model written: leave no empty `models/` behind.
+        let _ = std::fs::remove_dir(cfg.out_dir.join("models"));
+    }
+    let mut failure = None;
+    comp.status = match finish {
+        Err(e) => {
+            comp.status_detail = Some(e.to_string());
+            failure = Some(e);
+            Status::Failed
+        }
+        Ok(driver::Finish::Stopped) => Status::Interrupted,
+        Ok(driver::Finish::Complete) => Status::Complete,
+    };
+    if failure.is_none() {
+        if let Err(e) = measure_speed(cfg, &mut comp, progress) {
+            comp.status = Status::Failed;
+            comp.status_detail = Some(e.to_string());
+            failure = Some(e);
+        }
+    }
+    write_checkpoint(&cfg.out_dir, &comp, control)?;
+    outputs.dedup();
+    match failure {
+        Some(e) => Err(e),
+        None => Ok(Outcome { comparison: comp, outputs }),
+    }
+}
+
+/// `activations from A, F fitted + H held-out rows per layer`, from the
+/// layers whose statistics were built.
+fn describe_rows(path: &Path, layers: &[LayerInfo]) -> String {
+    let seen: Vec<&LayerInfo> = layers.iter().filter(|l| l.calibration_rows > 0).collect();
+    let rows = seen.first().map(|l| (l.calibration_rows, l.holdout_rows)).unwrap_or((0, 0));
+    let uniform = seen.iter().all(|l| (l.calibration_rows, l.holdout_rows) == rows);
+    format!(
+        "activations from {}, {} fitted + {} held-out rows {}",
+        path.display(),
+        rows.0,
+        rows.1,
+        if uniform { "per layer" } else { "in the first layer (other layers differ)" }
+    )
+}
+
+/// Refuse an output folder that is a file, or whose outputs would replace
+/// one of `inputs`.
+fn check_out_dir(dir: &Path, inputs: &[PathBuf]) -> Result<()> {
+    if dir.exists() && !dir.is_dir() {
+        return Err(Error::usage(format!(
+            "--out-dir {}: exists and is not a folder",
+            dir.display()
+        )));
+    }
+    for name in [JSON_NAME, HTML_NAME] {
+        let p = dir.join(name);
+        if inputs.contains(&io::canonical_target(&p)) {
+            return Err(Error::usage(format!(
+                "--out-dir {}: refusing to overwrite the input {}",
+                dir.display(),
+                p.display()
+            )));
+        }
+    }
+    Ok(())
+}
+
 /// The target key used for `--focus` by default: the highest unstructured
 /// sparsity, else the first target.
 pub fn default_focus(targets: &[Pattern]) -> Option<String> {
@@ -193,392 +417,6 @@ pub fn default_focus(targets: &[Pattern]) -> Option<String> {
         Some(s) => Some(format!("{s}")),
         None => targets.first().map(|p| data::target_key(*p)),
     }
-}
-
-/// Parked weights of solved layers, waiting for their run to finish.
-struct Parking {
-    dir: PathBuf,
-}
-
-impl Parking {
-    fn path(&self, run: usize, layer: usize) -> PathBuf {
-        self.dir.join(format!("{run}-{layer}.bin"))
-    }
-
-    fn park(
-        &self,
-        run: usize,
-        layer: usize,
-        values: &[f64],
-        dtype: io::Dtype,
-    ) -> Result<(), Error> {
-        let mut bytes = Vec::new();
-        io::dtype::encode_f64(dtype, values, &mut bytes).map_err(|e| Error {
-            kind: ErrorKind::Output,
-            message: format!("{}: cannot encode weights: {e}", self.dir.display()),
-        })?;
-        let p = self.path(run, layer);
-        std::fs::write(&p, &bytes).map_err(|e| Error {
-            kind: ErrorKind::Output,
-            message: format!("{}: cannot park pruned weights: {e}", p.display()),
-        })
-    }
-
-    fn fetch(&self, run: usize, layer: usize, dtype: io::Dtype) -> Result<Vec<f64>, Error> {
-        let p = self.path(run, layer);
-        let bytes = std::fs::read(&p).map_err(|e| Error {
-            kind: ErrorKind::Output,
-            message: format!("{}: cannot read parked weights: {e}", p.display()),
-        })?;
-        let mut out = Vec::new();
-        io::dtype::decode_f64(dtype, &bytes, &mut out);
-        Ok(out)
-    }
-}
-
-impl Drop for Parking {
-    fn drop(&mut self) {
-        let _ = std::fs::remove_dir_all(&self.dir);
-    }
-}
-
-/// Run every method at every target and write `comparison.json`,
-/// `comparison.html` and, with `keep_models`, the pruned models into
-/// `cfg.out_dir`.
-///
-/// A stop request ([`Control::stop`]) returns `Ok` with status
-/// [`Status::Interrupted`] after writing what finished.
-///
-/// # Errors
-/// [`ErrorKind::Input`] for anything wrong with the inputs or options,
-/// found before any file is written. [`ErrorKind::Solve`] or
-/// [`ErrorKind::Output`] for failures while running; the files then hold
-/// what finished, with status `failed`.
-pub fn compare(
-    cfg: &CompareConfig,
-    progress: &dyn Fn(Progress<'_>),
-    control: &Control,
-) -> Result<Outcome, Error> {
-    let created = data::utc_now();
-    let base = &cfg.base;
-    let apath = match &base.calibration {
-        Calibration::Activations(p) => p.clone(),
-        Calibration::Text(t) => return compare_text(cfg, t, created, progress, control),
-    };
-    if let Some(p) = &cfg.eval_text {
-        return Err(Error::input(format!(
-            "--eval-text {}: end-to-end figures need the model run on text; use --text \
-             calibration, or leave --eval-text out to compare layer errors",
-            p.display()
-        )));
-    }
-    let model = Model::open(&base.model)?;
-    let acts = TensorFile::open(&apath)?;
-
-    // Every run's plan must pass (patterns against widths, memory per method).
-    let mut runs_cfg = Vec::new();
-    let mut runs = Vec::new();
-    for &method in &cfg.methods {
-        for &pattern in &cfg.targets {
-            let rc = PruneConfig {
-                method,
-                pattern,
-                output: cfg.out_dir.clone(),
-                report: None,
-                trace: None,
-                ..base.clone()
-            };
-            runs.push(data::new_run(method, pattern, data::INPUTS_SHARED));
-            runs_cfg.push(rc);
-        }
-    }
-    let Some(first) = runs_cfg.first() else {
-        return Err(Error::input("nothing to compare: give --methods and a target"));
-    };
-    let jobs = pipeline::plan(first, &model, &acts, &apath)?;
-    for rc in &runs_cfg[1..] {
-        pipeline::plan(rc, &model, &acts, &apath)?;
-    }
-    check_out_dir(cfg, &model, &apath)?;
-    std::fs::create_dir_all(&cfg.out_dir).map_err(|e| {
-        Error::input(format!("--out-dir {}: cannot create it: {e}", cfg.out_dir.display()))
-    })?;
-
-    let layers: Vec<LayerInfo> = jobs
-        .iter()
-        .map(|j| {
-            let held = holdout_count(j.rows, base.holdout);
-            LayerInfo {
-                name: j.weight.name.clone(),
-                shape: [j.weight.shape[0], j.weight.shape[1]],
-                calibration_rows: j.rows - held,
-                holdout_rows: held,
-                gram_seconds: 0.0,
-            }
-        })
-        .collect();
-    let rows = layers.first().map(|l| (l.calibration_rows, l.holdout_rows)).unwrap_or((0, 0));
-    let uniform = layers.iter().all(|l| (l.calibration_rows, l.holdout_rows) == rows);
-    let description = format!(
-        "activations from {}, {} fitted + {} held-out rows {}",
-        apath.display(),
-        rows.0,
-        rows.1,
-        if uniform { "per layer" } else { "in the first layer (other layers differ)" }
-    );
-    let mut comp = Comparison {
-        format: data::FORMAT.to_string(),
-        format_version: data::FORMAT_VERSION,
-        tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        created,
-        status: Status::Running,
-        status_detail: None,
-        model: base.model.display().to_string(),
-        calibration: CalibrationInfo {
-            kind: "activations".to_string(),
-            path: apath.display().to_string(),
-            holdout: base.holdout,
-            description,
-        },
-        settings: settings(cfg, None),
-        layers,
-        runs,
-        notice: VALIDATION_NOTICE.to_string(),
-    };
-
-    let parking = if cfg.keep_models {
-        let dir = cfg.out_dir.join("models").join(format!(".parked-{}", std::process::id()));
-        std::fs::create_dir_all(&dir).map_err(|e| Error {
-            kind: ErrorKind::Output,
-            message: format!("{}: cannot create it: {e}", dir.display()),
-        })?;
-        control.scratch.lock().unwrap_or_else(|e| e.into_inner()).push(dir.clone());
-        Some(Parking { dir })
-    } else {
-        None
-    };
-
-    let par = if base.threads > 1 { Par::rayon(base.threads) } else { Par::Seq };
-    let mut outputs = vec![cfg.out_dir.join(JSON_NAME), cfg.out_dir.join(HTML_NAME)];
-    progress(Progress::Start(jobs.len() * runs_cfg.len()));
-    let mut done = 0;
-    let mut last = Instant::now();
-    let mut failure: Option<Error> = None;
-    let mut interrupted = false;
-    'layers: for (li, job) in jobs.iter().enumerate() {
-        if control.stop.load(Ordering::SeqCst) {
-            interrupted = true;
-            break;
-        }
-        let info = job.weight;
-        progress(Progress::Layer(&info.name));
-        let t0 = Instant::now();
-        let grams = match layer_stats(&model, &acts, job, base.holdout, par) {
-            Ok(g) => g,
-            Err(e) => {
-                failure = Some(e);
-                break;
-            }
-        };
-        comp.layers[li].gram_seconds = t0.elapsed().as_secs_f64();
-        let (w, grams) = grams;
-        for (ri, rc) in runs_cfg.iter().enumerate() {
-            if control.stop.load(Ordering::SeqCst) {
-                interrupted = true;
-                break 'layers;
-            }
-            progress(Progress::Solve(&info.name, &comp.runs[ri].id));
-            let solved = pipeline::solve_layer(rc, &info.name, info.dtype, w.as_ref(), &grams, par)
-                .map_err(Error::from)
-                .and_then(|s| {
-                    if let Some(p) = &parking {
-                        p.park(ri, li, &s.values, info.dtype)?;
-                    }
-                    Ok(s)
-                });
-            match solved {
-                Ok(s) => {
-                    let run = &mut comp.runs[ri];
-                    run.layers.push(s.report);
-                    run.resum();
-                }
-                Err(e) => {
-                    failure = Some(e);
-                    break 'layers;
-                }
-            }
-            done += 1;
-            progress(Progress::Done(done));
-            if last.elapsed().as_secs_f64() >= CHECKPOINT_SECONDS {
-                checkpoint(cfg, &comp, control)?;
-                last = Instant::now();
-            }
-        }
-    }
-    let n_layers = jobs.len();
-    for r in &mut comp.runs {
-        r.complete = r.layers.len() == n_layers;
-    }
-    comp.status = match (&failure, interrupted) {
-        (Some(e), _) => {
-            comp.status_detail = Some(e.to_string());
-            Status::Failed
-        }
-        (None, true) => Status::Interrupted,
-        (None, false) => Status::Complete,
-    };
-
-    if let Some(parking) = &parking {
-        progress(Progress::Writing);
-        let _guard = control.writing.lock().unwrap_or_else(|e| e.into_inner());
-        for ri in 0..comp.runs.len() {
-            if !comp.runs[ri].complete {
-                continue;
-            }
-            match write_run_model(cfg, &model, &jobs, parking, ri, &comp.runs[ri]) {
-                Ok(path) => {
-                    comp.runs[ri].model_output = Some(path.display().to_string());
-                    outputs.push(path);
-                }
-                Err(e) => {
-                    comp.status = Status::Failed;
-                    comp.status_detail = Some(e.to_string());
-                    failure.get_or_insert(e);
-                    break;
-                }
-            }
-        }
-    }
-    drop(parking);
-    if comp.runs.iter().all(|r| !r.complete) || !cfg.keep_models {
-        // No model written: leave no empty `models/` behind.
-        let _ = std::fs::remove_dir(cfg.out_dir.join("models"));
-    }
-    if failure.is_none() {
-        if let Err(e) = measure_speed(cfg, &mut comp, progress) {
-            comp.status = Status::Failed;
-            comp.status_detail = Some(e.to_string());
-            failure = Some(e);
-        }
-    }
-    checkpoint(cfg, &comp, control)?;
-    match failure {
-        Some(e) => Err(e),
-        None => Ok(Outcome { comparison: comp, outputs }),
-    }
-}
-
-/// Refuse an output folder that is a file, or whose outputs would replace
-/// an input.
-fn check_out_dir(cfg: &CompareConfig, model: &Model, acts: &Path) -> Result<(), Error> {
-    let d = &cfg.out_dir;
-    if d.exists() && !d.is_dir() {
-        return Err(Error::input(format!("--out-dir {}: exists and is not a folder", d.display())));
-    }
-    let mut inputs = model.input_files();
-    inputs.push(pipeline::canonical(acts));
-    for name in [JSON_NAME, HTML_NAME] {
-        let p = d.join(name);
-        if inputs.contains(&pipeline::canonical(&p)) {
-            return Err(Error::input(format!(
-                "--out-dir {}: refusing to overwrite the input {}",
-                d.display(),
-                p.display()
-            )));
-        }
-    }
-    Ok(())
-}
-
-/// Read one layer's weight and reduce its activations to Gram matrices.
-fn layer_stats(
-    model: &Model,
-    acts: &TensorFile,
-    job: &pipeline::Job<'_>,
-    holdout: f64,
-    par: Par,
-) -> Result<(Mat<f64>, LayerGrams), Error> {
-    let info = job.weight;
-    let (d_out, d_in) = (info.shape[0], info.shape[1]);
-    let flat = model.read_f64(&info.name)?;
-    let w = Mat::from_fn(d_out, d_in, |r, c| flat[r * d_in + c]);
-    drop(flat);
-    let mut grams = LayerGrams::new(d_in);
-    let step = pipeline::chunk_rows(d_in);
-    let mut start = 0;
-    while start < job.rows {
-        let end = (start + step).min(job.rows);
-        let x = acts.read_rows_f64(&info.name, start..end)?;
-        grams.add_chunk(&x, start, holdout, par);
-        start = end;
-    }
-    Ok((w, grams))
-}
-
-/// Write one finished run's pruned model under `models/<run id>/` and
-/// return the file (single-file model) or folder written.
-fn write_run_model(
-    cfg: &CompareConfig,
-    model: &Model,
-    jobs: &[pipeline::Job<'_>],
-    parking: &Parking,
-    ri: usize,
-    run: &Run,
-) -> Result<PathBuf, Error> {
-    let dir = cfg.out_dir.join("models").join(&run.id);
-    let out = match model.layout() {
-        io::Layout::File(p) => {
-            std::fs::create_dir_all(&dir).map_err(|e| Error {
-                kind: ErrorKind::Output,
-                message: format!("{}: cannot create it: {e}", dir.display()),
-            })?;
-            dir.join(p.file_name().unwrap_or_default())
-        }
-        _ => dir.clone(),
-    };
-    let mut replaced = BTreeMap::new();
-    for (li, job) in jobs.iter().enumerate() {
-        replaced.insert(job.weight.name.clone(), parking.fetch(ri, li, job.weight.dtype)?);
-    }
-    let meta = run_meta(cfg, run, jobs.len());
-    io::write_model(model, &out, &replaced, &meta)?;
-    Ok(out)
-}
-
-/// Write `comparison.json` and `comparison.html` atomically, holding the
-/// write lock so an impatient stop never cuts a file short.
-fn checkpoint(cfg: &CompareConfig, comp: &Comparison, control: &Control) -> Result<(), Error> {
-    let _guard = control.writing.lock().unwrap_or_else(|e| e.into_inner());
-    let json = comp.to_json();
-    io::write_atomic(&cfg.out_dir.join(JSON_NAME), |w| {
-        std::io::Write::write_all(w, json.as_bytes())
-    })?;
-    let source = Source { label: "this run".to_string(), path: None, comparison: comp.clone() };
-    let html = page::render(std::slice::from_ref(&source), Some(&comp.settings.focus));
-    io::write_atomic(&cfg.out_dir.join(HTML_NAME), |w| {
-        std::io::Write::write_all(w, html.as_bytes())
-    })?;
-    Ok(())
-}
-
-/// The `lopper.*` metadata of a run's pruned model.
-fn run_meta(cfg: &CompareConfig, run: &Run, layers: usize) -> BTreeMap<String, String> {
-    let mut meta = BTreeMap::new();
-    meta.insert("lopper.version".to_string(), env!("CARGO_PKG_VERSION").to_string());
-    meta.insert("lopper.method".to_string(), run.method.clone());
-    match &run.pattern {
-        Some(p) => meta.insert("lopper.pattern".to_string(), p.clone()),
-        None => meta.insert("lopper.sparsity".to_string(), run.target.clone()),
-    };
-    meta.insert("lopper.scope".to_string(), run.scope.clone());
-    let ridge = match cfg.base.ridge {
-        Ridge::Fixed(a) => a.to_string(),
-        Ridge::Auto { .. } => "auto".to_string(),
-    };
-    meta.insert("lopper.ridge".to_string(), ridge);
-    meta.insert("lopper.holdout".to_string(), cfg.base.holdout.to_string());
-    meta.insert("lopper.pruned_layers".to_string(), layers.to_string());
-    meta
 }
 
 /// The end-to-end figures of one run, from the evaluation summary.
@@ -602,176 +440,6 @@ fn end_to_end(e: &crate::report::EvalSummary) -> data::EndToEnd {
     }
 }
 
-/// [`compare`] with text calibration: one sequential run of the model per
-/// method × target.
-fn compare_text(
-    cfg: &CompareConfig,
-    src: &crate::textcal::TextSource,
-    created: String,
-    progress: &dyn Fn(Progress<'_>),
-    control: &Control,
-) -> Result<Outcome, Error> {
-    let base = &cfg.base;
-    let model = Model::open(&base.model)?;
-    if let Some(p) = &cfg.eval_text {
-        crate::textcal::read_text(p)?;
-    }
-    crate::textcal::read_text(&src.path)?;
-    let mut runs_cfg = Vec::new();
-    let mut runs = Vec::new();
-    let inputs = if src.propagate { data::INPUTS_OWN } else { data::INPUTS_SHARED };
-    for &method in &cfg.methods {
-        for &pattern in &cfg.targets {
-            let rc = PruneConfig {
-                method,
-                pattern,
-                output: cfg.out_dir.clone(),
-                report: None,
-                trace: None,
-                ..base.clone()
-            };
-            runs.push(data::new_run(method, pattern, inputs));
-            runs_cfg.push(rc);
-        }
-    }
-    let Some(first) = runs_cfg.first() else {
-        return Err(Error::input("nothing to compare: give --methods and a target"));
-    };
-    let mut n_layers = crate::textcal::count_layers(first, &model)?;
-    for rc in &runs_cfg[1..] {
-        n_layers = crate::textcal::count_layers(rc, &model)?;
-    }
-    check_out_dir(cfg, &model, &src.path)?;
-    std::fs::create_dir_all(&cfg.out_dir).map_err(|e| {
-        Error::input(format!("--out-dir {}: cannot create it: {e}", cfg.out_dir.display()))
-    })?;
-    let mut comp = Comparison {
-        format: data::FORMAT.to_string(),
-        format_version: data::FORMAT_VERSION,
-        tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        created,
-        status: Status::Running,
-        status_detail: None,
-        model: base.model.display().to_string(),
-        calibration: CalibrationInfo {
-            kind: "text".to_string(),
-            path: src.path.display().to_string(),
-            holdout: base.holdout,
-            description: format!(
-                "text from {}, run through the model once per method and target ({})",
-                src.path.display(),
-                if src.propagate {
-                    "sequential: each run calibrates on its own pruned blocks' outputs"
-                } else {
-                    "dense inputs everywhere (--no-propagate)"
-                }
-            ),
-        },
-        settings: settings(cfg, cfg.eval_text.as_deref()),
-        layers: Vec::new(),
-        runs,
-        notice: VALIDATION_NOTICE.to_string(),
-    };
-    let par = if base.threads > 1 { Par::rayon(base.threads) } else { Par::Seq };
-    let mut outputs = vec![cfg.out_dir.join(JSON_NAME), cfg.out_dir.join(HTML_NAME)];
-    progress(Progress::Start(n_layers * runs_cfg.len()));
-    let mut failure: Option<Error> = None;
-    let mut interrupted = false;
-    for (ri, rc) in runs_cfg.iter().enumerate() {
-        if control.stop.load(Ordering::SeqCst) {
-            interrupted = true;
-            break;
-        }
-        let id = comp.runs[ri].id.clone();
-        let offset = ri * n_layers;
-        let on = |p: pipeline::Progress<'_>| {
-            if let pipeline::Progress::Layer(i, name) = p {
-                progress(Progress::Done(offset + i));
-                progress(Progress::Solve(name, &id));
-            }
-        };
-        let result = crate::textcal::run(rc, &model, src, &on, par).map_err(Error::from);
-        let result = result.and_then(|r| {
-            let e2e = match &cfg.eval_text {
-                Some(t) => {
-                    let opts = crate::evaluate::EvalOptions {
-                        text: t.clone(),
-                        samples: None,
-                        seq_len: src.seq_len,
-                    };
-                    Some(end_to_end(&crate::evaluate::evaluate(&model, &r.replaced, &opts)?))
-                }
-                None => None,
-            };
-            Ok((r, e2e))
-        });
-        let (r, e2e) = match result {
-            Ok(x) => x,
-            Err(e) => {
-                failure = Some(e);
-                break;
-            }
-        };
-        if comp.layers.is_empty() {
-            comp.layers = r
-                .solved
-                .iter()
-                .map(|(_, s)| LayerInfo {
-                    name: s.report.name.clone(),
-                    shape: s.report.shape,
-                    calibration_rows: s.report.calibration_rows,
-                    holdout_rows: s.report.holdout_rows,
-                    gram_seconds: 0.0,
-                })
-                .collect();
-        }
-        let run = &mut comp.runs[ri];
-        run.layers = r.solved.into_iter().map(|(_, s)| s.report).collect();
-        run.resum();
-        run.summary.seconds = r.timing.forward + r.timing.gram + r.timing.solve;
-        run.end_to_end = e2e;
-        run.complete = true;
-        if cfg.keep_models {
-            progress(Progress::Writing);
-            let dir = cfg.out_dir.join("models").join(&run.id);
-            let _guard = control.writing.lock().unwrap_or_else(|e| e.into_inner());
-            let meta = run_meta(cfg, run, n_layers);
-            match io::write_model(&model, &dir, &r.replaced, &meta) {
-                Ok(_) => {
-                    run.model_output = Some(dir.display().to_string());
-                    outputs.push(dir);
-                }
-                Err(e) => {
-                    failure = Some(e.into());
-                    break;
-                }
-            }
-        }
-        progress(Progress::Done(offset + n_layers));
-        checkpoint(cfg, &comp, control)?;
-    }
-    comp.status = match (&failure, interrupted) {
-        (Some(e), _) => {
-            comp.status_detail = Some(e.to_string());
-            Status::Failed
-        }
-        (None, true) => Status::Interrupted,
-        (None, false) => Status::Complete,
-    };
-    if failure.is_none() {
-        if let Err(e) = measure_speed(cfg, &mut comp, progress) {
-            comp.status = Status::Failed;
-            comp.status_detail = Some(e.to_string());
-            failure = Some(e);
-        }
-    }
-    checkpoint(cfg, &comp, control)?;
-    match failure {
-        Some(e) => Err(e),
-        None => Ok(Outcome { comparison: comp, outputs }),
-    }
-}
-
 /// With `speed_batch`, time every written run model's pruned layers, dense
 /// against sparse kernels, and record the sums over layers.
 fn measure_speed(
@@ -782,19 +450,16 @@ fn measure_speed(
     let Some(batch) = cfg.speed_batch else { return Ok(()) };
     let speed = crate::deploy::SpeedConfig {
         batches: vec![batch],
-        threads: cfg.base.threads,
+        threads: cfg.job.threads,
         min_time: 0.1,
-        selection: cfg.base.selection.clone(),
+        selection: cfg.job.selection.clone(),
         stream_bytes: 0,
     };
     for run in comp.runs.iter_mut() {
         let Some(path) = &run.model_output else { continue };
         progress(Progress::Writing);
         let model = Model::open(Path::new(path))?;
-        let report = crate::deploy::measure(&model, &speed, &|_, _, _| {}).map_err(|e| Error {
-            kind: ErrorKind::Solve,
-            message: format!("timing {}: {e}", run.id),
-        })?;
+        let report = crate::deploy::measure(&model, &speed, &|_, _, _| {}).map_err(|e| e.context(format!("timing {}", run.id)))?;
         if let Some(t) = report.totals.timings.first() {
             run.speed = Some(data::Speed {
                 batch: t.batch,
@@ -807,10 +472,10 @@ fn measure_speed(
 }
 
 /// The settings block of the record.
-fn settings(cfg: &CompareConfig, eval_text: Option<&Path>) -> CompareSettings {
-    let base = &cfg.base;
+fn settings(cfg: &CompareConfig) -> CompareSettings {
+    let base = &cfg.job;
     CompareSettings {
-        methods: cfg.methods.iter().map(|m| m.name().to_string()).collect(),
+        methods: cfg.methods.iter().map(Method::to_string).collect(),
         targets: cfg.targets.iter().map(|p| data::target_key(*p)).collect(),
         scope: cfg
             .targets
@@ -821,10 +486,7 @@ fn settings(cfg: &CompareConfig, eval_text: Option<&Path>) -> CompareSettings {
             })
             .unwrap_or("row")
             .to_string(),
-        ridge: match base.ridge {
-            Ridge::Fixed(a) => serde_json::json!(a),
-            Ridge::Auto { .. } => serde_json::json!("auto"),
-        },
+        ridge: base.ridge.to_json(),
         max_sweeps: base.l0.max_sweeps,
         layer_seconds: base.l0.max_seconds,
         threads: base.threads,
@@ -832,6 +494,6 @@ fn settings(cfg: &CompareConfig, eval_text: Option<&Path>) -> CompareSettings {
         skip: cfg.globs.1.clone(),
         keep_models: cfg.keep_models,
         focus: cfg.focus.clone().or_else(|| default_focus(&cfg.targets)).unwrap_or_default(),
-        eval_text: eval_text.map(|p| p.display().to_string()),
+        eval_text: base.eval.as_ref().map(|e| e.text.display().to_string()),
     }
 }

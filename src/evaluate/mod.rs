@@ -5,11 +5,11 @@
 //! The metric kernels ([`cosine`], [`log_softmax`], [`kl_divergence`]) are
 //! pure functions on slices; [`evaluate`] runs both networks.
 
-use crate::arch::{self, ArchError, ArchErrorKind, Batch, Kind, Network};
+use crate::arch::{self, Batch, Kind, Network};
+use crate::error::Error;
 use crate::io::Model;
-use crate::pipeline::Error;
 use crate::report::EvalSummary;
-use crate::textcal::{load_tokenizer, read_text, tokenize, Framing};
+use crate::tokenize::{load_tokenizer, read_text, tokenize, Framing};
 use std::collections::BTreeMap;
 use std::path::PathBuf;
 
@@ -54,21 +54,14 @@ pub fn kl_divergence(log_p: &[f64], log_q: &[f64]) -> f64 {
         .sum()
 }
 
-fn arch_error(e: ArchError) -> Error {
-    match e.kind() {
-        ArchErrorKind::Compute => Error::solve(e.to_string()),
-        _ => Error::input(e.to_string()),
-    }
-}
-
 /// Build the dense network of `dense` and a copy with `replace` applied
 /// (weights in the file's storage orientation, by tensor name).
 pub fn networks(
     dense: &Model,
     replace: &BTreeMap<String, Vec<f64>>,
 ) -> Result<(Box<dyn Network>, Box<dyn Network>), Error> {
-    let a = arch::load(dense).map_err(arch_error)?;
-    let mut b = arch::load(dense).map_err(arch_error)?;
+    let a = arch::load(dense)?;
+    let mut b = arch::load(dense)?;
     for (name, values) in replace {
         let Some(lin) = b.linear(name) else { continue };
         let (o, i) = lin.shape();
@@ -79,7 +72,7 @@ pub fn networks(
         } else {
             values.iter().map(|&v| v as f32).collect()
         };
-        b.set_weight(name, &w).map_err(arch_error)?;
+        b.set_weight(name, &w)?;
     }
     Ok((a, b))
 }
@@ -87,7 +80,7 @@ pub fn networks(
 /// Read every linear layer of the network from `pruned` (same names and
 /// shapes as `dense`), in storage orientation, for [`networks`].
 pub fn pruned_weights(dense: &Model, pruned: &Model) -> Result<BTreeMap<String, Vec<f64>>, Error> {
-    let net = arch::load(dense).map_err(arch_error)?;
+    let net = arch::load(dense)?;
     let mut out = BTreeMap::new();
     for b in 0..net.num_blocks() {
         for g in net.groups(b) {
@@ -154,7 +147,7 @@ pub fn evaluate(
             let seq_len = opts.seq_len.unwrap_or(256).min(max);
             let content = seq_len.saturating_sub(framing.len());
             if content < 2 {
-                return Err(Error::input(format!("--seq-len {seq_len} is too short to evaluate")));
+                return Err(Error::usage(format!("--seq-len {seq_len} is too short to evaluate")));
             }
             let ids = tokenize(&tok, &text)
                 .map_err(|e| Error::input(format!("{shown}: cannot tokenize: {e}")))?;
@@ -185,7 +178,7 @@ fn run(net: &dyn Network, batch: &Batch) -> Result<(Vec<f64>, Vec<f64>), Error> 
         let out = arch::rows(&net.output(&x)?)?;
         Ok((arch::to_f64_rows(&arch::rows(&x)?)?, arch::to_f64_rows(&out)?))
     };
-    go().map_err(arch_error)
+    Ok(go()?)
 }
 
 /// Running `Σ‖a − b‖²` and `Σ‖a‖²` over final hidden states.

@@ -41,7 +41,7 @@ pub use file::{TensorFile, TensorInfo};
 pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
-pub use write::{write_atomic, write_model};
+pub use write::{canonical_target, write_atomic, write_model};
 
 /// What went wrong while reading a file or model.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

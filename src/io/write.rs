@@ -276,7 +276,7 @@ fn header_bytes(meta: &BTreeMap<&str, &str>, tensors: &[HeaderEntry<'_>]) -> Vec
 /// `p` made canonical even if it does not exist yet: the canonical parent
 /// joined with the file name (or `p` itself when the parent is missing too,
 /// in which case it cannot be an existing input).
-fn canonical_target(p: &Path) -> PathBuf {
+pub fn canonical_target(p: &Path) -> PathBuf {
     if let Ok(c) = p.canonicalize() {
         return c;
     }

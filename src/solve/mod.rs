@@ -29,6 +29,7 @@ pub mod baseline;
 pub mod budget;
 pub mod l0;
 pub mod mask;
+mod names;
 pub mod objective;
 pub mod obs;
 

@@ -1,24 +1,27 @@
-//! Text → token ids → fixed-length windows.
+//! Text → token ids → fixed-length windows: reading UTF-8 text, loading a
+//! model's `tokenizer.json`, the special tokens a family puts around each
+//! sequence, and the seeded draw of window offsets.
+//!
+//! Used by text calibration ([`crate::source`]) and by end-to-end
+//! evaluation ([`crate::evaluate`]); it knows nothing of either.
 
 use crate::arch::Family;
-use crate::pipeline::Error;
+use crate::error::Error;
+use crate::rng::SplitMix64;
 use std::path::Path;
 use tokenizers::Tokenizer;
 
 /// Read a UTF-8 text file; the error names the file and the byte offset of
 /// the first invalid sequence.
 pub fn read_text(path: &Path) -> Result<String, Error> {
-    let bytes = std::fs::read(path)
-        .map_err(|e| Error::input(format!("{}: cannot read text ({e})", path.display())))?;
+    let bad = |m: String| Error::input(format!("{}: {m}", path.display())).with_path(path);
+    let bytes = std::fs::read(path).map_err(|e| bad(format!("cannot read text ({e})")))?;
     let text = String::from_utf8(bytes).map_err(|e| {
-        Error::input(format!(
-            "{}: not UTF-8 text (invalid byte sequence at offset {})",
-            path.display(),
-            e.utf8_error().valid_up_to()
-        ))
+        let at = e.utf8_error().valid_up_to();
+        bad(format!("not UTF-8 text (invalid byte sequence at offset {at})"))
     })?;
     if text.trim().is_empty() {
-        return Err(Error::input(format!("{}: holds no text", path.display())));
+        return Err(bad("holds no text".into()));
     }
     Ok(text)
 }
@@ -27,21 +30,17 @@ pub fn read_text(path: &Path) -> Result<String, Error> {
 /// exports fix padding to a length; windows are cut by lopper instead).
 pub fn load_tokenizer(dir: &Path) -> Result<Tokenizer, Error> {
     let path = dir.join("tokenizer.json");
+    let bad = |m: String| Error::input(format!("{}: {m}", path.display())).with_path(&path);
     if !path.is_file() {
-        return Err(Error::input(format!(
-            "{}: not found; text calibration needs the model's tokenizer.json",
-            path.display()
-        )));
+        return Err(bad("not found; text calibration needs the model's tokenizer.json".into()));
     }
     let mut tok = Tokenizer::from_file(&path).map_err(|e| {
         let text = e.to_string();
-        let first = text.lines().next().unwrap_or("unreadable");
-        Error::input(format!("{}: cannot load the tokenizer ({first})", path.display()))
+        let first = text.lines().next().unwrap_or("unreadable").to_string();
+        bad(format!("cannot load the tokenizer ({first})"))
     })?;
     tok.with_padding(None);
-    tok.with_truncation(None).map_err(|e| {
-        Error::input(format!("{}: cannot turn truncation off ({e})", path.display()))
-    })?;
+    tok.with_truncation(None).map_err(|e| bad(format!("cannot turn truncation off ({e})")))?;
     Ok(tok)
 }
 
@@ -116,31 +115,6 @@ impl Framing {
     }
 }
 
-/// SplitMix64 (Steele, Lea & Flood 2014): a small, well-mixed generator,
-/// enough for drawing window offsets reproducibly.
-struct SplitMix64(u64);
-
-impl SplitMix64 {
-    fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-
-    /// Uniform in `0..n` (n ≥ 1), by rejection so there is no modulo bias.
-    fn below(&mut self, n: u64) -> u64 {
-        let zone = u64::MAX - u64::MAX % n;
-        loop {
-            let v = self.next();
-            if v < zone {
-                return v % n;
-            }
-        }
-    }
-}
-
 /// `count` window starts, each in `0..=n_tokens − len`, drawn uniformly and
 /// reproducibly from `seed`.
 ///
@@ -150,25 +124,13 @@ impl SplitMix64 {
 pub fn draw_windows(n_tokens: usize, count: usize, len: usize, seed: u64) -> Vec<usize> {
     assert!(len <= n_tokens, "window longer than the text");
     let span = (n_tokens - len + 1) as u64;
-    let mut rng = SplitMix64(seed);
+    let mut rng = SplitMix64::new(seed);
     (0..count).map(|_| rng.below(span) as usize).collect()
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn splitmix_matches_the_published_sequence() {
-        // Reference outputs for seed 1234567 of the published SplitMix64
-        // C code (Vigna, prng.di.unimi.it/splitmix64.c), as printed by a
-        // separate Python port of it.
-        let mut r = SplitMix64(1234567);
-        let want: [u64; 3] = [6457827717110365317, 3203168211198807973, 9817491932198370423];
-        for w in want {
-            assert_eq!(r.next(), w);
-        }
-    }
 
     #[test]
     fn windows_are_reproducible_and_in_range() {

@@ -1,0 +1,226 @@
+//! The layer driver: for each block of a [`LayerSource`], build the
+//! statistics, solve every selected layer for every run, and hand the
+//! results to a [`Sink`]. `lopper prune` is one run ([`prune`]);
+//! `lopper compare` is the same loop with runs (method × target) as a
+//! second dimension.
+//!
+//! Loop order: when the source's statistics do not depend on the pruned
+//! weights (activations, or text without propagation), every run shares
+//! one pass: blocks outside, runs inside, one block's statistics in memory.
+//! When they do (sequential text calibration), each run has its own pass
+//! of the source: runs outside, blocks inside.
+//!
+//! Parallelism lives inside the kernels (matrix products and rows), bounded
+//! by `threads`; the driver itself is sequential, so reports come out in
+//! layer order.
+
+mod layer;
+mod prune;
+
+pub use layer::{solve_layer, Ridge, Solved, AUTO_RIDGE_GRID, DEFAULT_RIDGE};
+pub use prune::{prune, PruneConfig};
+pub(crate) use prune::model_meta;
+
+use crate::error::Result;
+use crate::evaluate::EvalOptions;
+use crate::io::Model;
+use crate::report::PhaseTimes;
+use crate::select::Selection;
+use crate::solve::{L0Params, Method, Pattern};
+use crate::source::{self, Calibration, LayerSource, PlanParams, Planned};
+use faer::Par;
+use std::path::PathBuf;
+use std::time::Instant;
+
+/// What every run of a job shares: the model, the calibration, and how
+/// each layer is solved apart from its method and target.
+#[derive(Clone, Debug)]
+pub struct JobConfig {
+    /// Model file, index or directory.
+    pub model: PathBuf,
+    /// Where the calibration inputs come from.
+    pub calibration: Calibration,
+    /// Ridge choice.
+    pub ridge: Ridge,
+    /// Fraction of activation rows (text: windows) held out.
+    pub holdout: f64,
+    /// Which tensors.
+    pub selection: Selection,
+    /// Worker threads (resolved, ≥ 1).
+    pub threads: usize,
+    /// Local-search settings.
+    pub l0: L0Params,
+    /// Record the local-search objective after every sweep.
+    pub trace: bool,
+    /// End-to-end comparison on held-out text, when asked for.
+    pub eval: Option<EvalOptions>,
+}
+
+impl JobConfig {
+    /// The kernels' parallelism.
+    pub fn par(&self) -> Par {
+        if self.threads > 1 {
+            Par::rayon(self.threads)
+        } else {
+            Par::Seq
+        }
+    }
+}
+
+/// One run: a method at a target.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Target {
+    /// Solver.
+    pub method: Method,
+    /// Sparsity pattern.
+    pub pattern: Pattern,
+}
+
+/// Progress events for a front end.
+#[derive(Clone, Copy, Debug)]
+pub enum Progress<'a> {
+    /// This many solves (layers × runs) lie ahead.
+    Start(usize),
+    /// Building the statistics of this block (or layer).
+    Statistics(&'a str),
+    /// `done` solves are finished; layer `layer` of run `run` starts.
+    Solve {
+        /// Solves finished so far.
+        done: usize,
+        /// Weight tensor name.
+        layer: &'a str,
+        /// Index of the run.
+        run: usize,
+    },
+    /// This many solves are finished.
+    Done(usize),
+    /// All layers are done; the pruned model is compared with the dense one.
+    Evaluating,
+    /// Outputs are being written.
+    Writing,
+}
+
+/// Where solved layers go.
+pub trait Sink {
+    /// The statistics of a block are ready (before its layers are solved).
+    fn statistics(&mut self, _layers: &[Planned], _stats: &source::BlockStats) {}
+
+    /// Layer `layer` of run `run` is solved.
+    ///
+    /// # Errors
+    /// Whatever keeping the result fails with; the driver stops.
+    fn solved(&mut self, run: usize, layer: &Planned, solved: Solved) -> Result<()>;
+
+    /// Run `run` has every layer. `timing` is the source's phase times
+    /// (text calibration) with the solve time of the runs that shared it.
+    ///
+    /// # Errors
+    /// Whatever finishing the run fails with; the driver stops.
+    fn run_done(&mut self, run: usize, timing: Option<PhaseTimes>) -> Result<()>;
+
+    /// Asked between solves: stop now, leaving later solves undone.
+    fn stop_requested(&self) -> bool {
+        false
+    }
+}
+
+/// How [`drive`] ended.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Finish {
+    /// Every run has every layer.
+    Complete,
+    /// [`Sink::stop_requested`] said stop.
+    Stopped,
+}
+
+/// Plan parameters for `targets` under `cfg`.
+fn plan_params<'a>(cfg: &'a JobConfig, targets: &'a [(Method, Pattern)]) -> PlanParams<'a> {
+    PlanParams {
+        selection: &cfg.selection,
+        holdout: cfg.holdout,
+        needs_holdout: cfg.ridge == (Ridge::Auto { fallback: None }),
+        targets,
+    }
+}
+
+/// Open the calibration source of `cfg` for `model`, checked for every run
+/// of `targets` (see [`source::open`]).
+///
+/// # Errors
+/// Anything wrong with the selection, the calibration data or the targets.
+pub fn open_source<'m>(
+    cfg: &JobConfig,
+    targets: &[Target],
+    model: &'m Model,
+) -> Result<Box<dyn LayerSource + 'm>> {
+    let pairs: Vec<(Method, Pattern)> = targets.iter().map(|t| (t.method, t.pattern)).collect();
+    source::open(&cfg.calibration, model, &plan_params(cfg, &pairs))
+}
+
+/// Solve every selected layer of `first` for every run of `targets`,
+/// handing each result to `sink`. `first` is the source [`open_source`]
+/// returned; runs that cannot share it get a fresh one.
+///
+/// # Errors
+/// The first failure of the source, a solver or the sink.
+pub fn drive<'m>(
+    cfg: &JobConfig,
+    targets: &[Target],
+    model: &'m Model,
+    first: Box<dyn LayerSource + 'm>,
+    sink: &mut dyn Sink,
+    progress: &dyn Fn(Progress<'_>),
+) -> Result<Finish> {
+    let par = cfg.par();
+    let n_layers: usize = first.blocks().iter().map(Vec::len).sum();
+    progress(Progress::Start(n_layers * targets.len()));
+    let all: Vec<usize> = (0..targets.len()).collect();
+    let cohorts: Vec<Vec<usize>> = if first.follows_pruned() {
+        all.iter().map(|&r| vec![r]).collect()
+    } else {
+        vec![all]
+    };
+    let mut next = Some(first);
+    let mut done = 0;
+    for cohort in cohorts {
+        let mut src = match next.take() {
+            Some(s) => s,
+            None => open_source(cfg, targets, model)?,
+        };
+        let mut solve_secs = 0.0;
+        for b in 0..src.blocks().len() {
+            if sink.stop_requested() {
+                return Ok(Finish::Stopped);
+            }
+            let layers = src.blocks()[b].clone();
+            progress(Progress::Statistics(&src.block_label(b)));
+            let stats = src.statistics(b, par)?;
+            sink.statistics(&layers, &stats);
+            for layer in &layers {
+                let w = src.weight(layer)?;
+                for &r in &cohort {
+                    if sink.stop_requested() {
+                        return Ok(Finish::Stopped);
+                    }
+                    progress(Progress::Solve { done, layer: &layer.name, run: r });
+                    let t = Instant::now();
+                    let grams = &stats.grams[&layer.group];
+                    let solved = solve_layer(cfg, targets[r], layer, w.as_ref(), grams, par)?;
+                    if src.follows_pruned() {
+                        src.hand_back(layer, &solved.values)?;
+                    }
+                    solve_secs += t.elapsed().as_secs_f64();
+                    sink.solved(r, layer, solved)?;
+                    done += 1;
+                    progress(Progress::Done(done));
+                }
+            }
+            src.finish_block(b)?;
+        }
+        let timing = src.timing().map(|t| PhaseTimes { solve: solve_secs, ..t });
+        for &r in &cohort {
+            sink.run_done(r, timing)?;
+        }
+    }
+    Ok(Finish::Complete)
+}

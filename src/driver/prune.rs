@@ -1,0 +1,157 @@
+//! `lopper prune`: one run of the driver, then the pruned model, the trace
+//! and the report, written only when every layer succeeded.
+
+use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target};
+use crate::outputs::{check_distinct, input_files};
+use crate::error::Result;
+use crate::io::{self, Model};
+use crate::report::{LayerReport, PhaseTimes, Report, Settings, Summary, VALIDATION_NOTICE};
+use crate::source::{Calibration, Planned};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+/// Everything a prune run needs, validated by the caller's flag parsing.
+#[derive(Clone, Debug)]
+pub struct PruneConfig {
+    /// Model, calibration and solver settings.
+    pub job: JobConfig,
+    /// Method and pattern.
+    pub target: Target,
+    /// Output file (single-file model) or directory.
+    pub output: PathBuf,
+    /// JSON report path.
+    pub report: Option<PathBuf>,
+    /// JSON-lines objective trace path.
+    pub trace: Option<PathBuf>,
+}
+
+/// Keeps one run's results in memory until they are written.
+#[derive(Default)]
+struct Collect {
+    /// Pruned weights in storage orientation, by tensor name.
+    replaced: BTreeMap<String, Vec<f64>>,
+    layers: Vec<LayerReport>,
+    traces: Vec<(String, Vec<f64>)>,
+    timing: Option<PhaseTimes>,
+}
+
+impl Sink for Collect {
+    fn solved(&mut self, _: usize, layer: &Planned, s: Solved) -> Result<()> {
+        self.replaced.insert(layer.name.clone(), layer.to_storage(s.values));
+        self.traces.push((layer.name.clone(), s.trace));
+        self.layers.push(s.report);
+        Ok(())
+    }
+
+    fn run_done(&mut self, _: usize, timing: Option<PhaseTimes>) -> Result<()> {
+        self.timing = timing;
+        Ok(())
+    }
+}
+
+/// The `lopper.*` metadata written into a pruned model.
+pub(crate) fn model_meta(job: &JobConfig, target: Target, layers: usize) -> BTreeMap<String, String> {
+    let mut meta = BTreeMap::new();
+    meta.insert("lopper.version".to_string(), env!("CARGO_PKG_VERSION").to_string());
+    meta.insert("lopper.method".to_string(), target.method.to_string());
+    match target.pattern.sparsity() {
+        Some(s) => meta.insert("lopper.sparsity".to_string(), s.to_string()),
+        None => meta.insert("lopper.pattern".to_string(), target.pattern.to_string()),
+    };
+    meta.insert("lopper.scope".to_string(), target.pattern.scope_name().to_string());
+    meta.insert("lopper.ridge".to_string(), job.ridge.to_string());
+    meta.insert("lopper.holdout".to_string(), job.holdout.to_string());
+    meta.insert("lopper.pruned_layers".to_string(), layers.to_string());
+    meta
+}
+
+/// Prune the selected layers of `cfg.job.model` and write the outputs.
+///
+/// # Errors
+/// Usage and input errors before any work; [`crate::ErrorKind::Solve`] when
+/// a solver fails, [`crate::ErrorKind::Output`] when writing fails. Nothing
+/// is written unless every layer succeeded.
+pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Report> {
+    let t0 = Instant::now();
+    let job = &cfg.job;
+    let model = Model::open(&job.model)?;
+    let eval_text = job.eval.as_ref().map(|e| e.text.as_path());
+    let mut read: Vec<&Path> = vec![job.calibration.path()];
+    read.extend(eval_text);
+    let mut outs = vec![("-o", cfg.output.as_path())];
+    outs.extend(cfg.report.as_deref().map(|p| ("--report", p)));
+    outs.extend(cfg.trace.as_deref().map(|p| ("--trace", p)));
+    check_distinct(&input_files(&model, &read), &outs)?;
+    if let Some(t) = eval_text {
+        // Fail on a bad evaluation file before the long part.
+        crate::tokenize::read_text(t)?;
+    }
+    let targets = [cfg.target];
+    let source = open_source(job, &targets, &model)?;
+    let text = source.description();
+    let mut sink = Collect::default();
+    drive(job, &targets, &model, source, &mut sink, progress)?;
+    let eval = match &job.eval {
+        Some(opts) => {
+            progress(Progress::Evaluating);
+            Some(crate::evaluate::evaluate(&model, &sink.replaced, opts)?)
+        }
+        None => None,
+    };
+    progress(Progress::Writing);
+
+    let pattern = cfg.target.pattern;
+    let activations = match &job.calibration {
+        Calibration::Activations(p) => Some(p.display().to_string()),
+        Calibration::Text(_) => None,
+    };
+    let settings = Settings {
+        method: cfg.target.method.to_string(),
+        sparsity: pattern.sparsity(),
+        pattern: pattern.sparsity().is_none().then(|| pattern.to_string()),
+        scope: pattern.scope_name().to_string(),
+        ridge: job.ridge.to_json(),
+        holdout: job.holdout,
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        model: job.model.display().to_string(),
+        activations,
+        text,
+        threads: job.threads,
+    };
+    let meta = model_meta(job, cfg.target, sink.layers.len());
+    let mut outputs: Vec<String> = io::write_model(&model, &cfg.output, &sink.replaced, &meta)?
+        .iter()
+        .map(|p| p.display().to_string())
+        .collect();
+    if let Some(path) = &cfg.trace {
+        let mut text = String::new();
+        for (name, t) in &sink.traces {
+            for (sweep, f) in t.iter().enumerate() {
+                let line = serde_json::json!({ "layer": name, "sweep": sweep, "objective": f });
+                text.push_str(&line.to_string());
+                text.push('\n');
+            }
+        }
+        io::write_atomic(path, |w| std::io::Write::write_all(w, text.as_bytes()))?;
+        outputs.push(path.display().to_string());
+    }
+    if let Some(path) = &cfg.report {
+        outputs.push(path.display().to_string());
+    }
+    let summary = Summary::of(&sink.layers, t0.elapsed().as_secs_f64());
+    let report = Report {
+        settings,
+        layers: sink.layers,
+        summary,
+        outputs,
+        timing: sink.timing,
+        eval,
+        notice: VALIDATION_NOTICE.to_string(),
+    };
+    if let Some(path) = &cfg.report {
+        let json = report.to_json();
+        io::write_atomic(path, |w| std::io::Write::write_all(w, json.as_bytes()))?;
+    }
+    Ok(report)
+}
