@@ -24,7 +24,6 @@ use crate::io::{self, Model, PackedLayer, TensorInfo};
 use crate::select::Selection;
 use crate::sparse::{dense_matmul, DenseKernel, Par, SparseWeight};
 
-
 /// The `N:M` pattern recorded in the model's `lopper.pattern` metadata, if
 /// any file of the model has one that parses.
 pub fn pattern_hint(model: &Model) -> Option<(usize, usize)> {

@@ -159,7 +159,7 @@ impl std::error::Error for Error {
 
 impl From<io::LoadError> for Error {
     fn from(e: io::LoadError) -> Self {
-        let mut out = Error::new(ErrorKind::Input, e.to_string()).with_path(&e.path().to_owned());
+        let mut out = Error::new(ErrorKind::Input, e.to_string()).with_path(e.path());
         out.layer = e.tensor_name().map(str::to_string);
         out.with_source(e)
     }
@@ -173,7 +173,7 @@ impl From<io::WriteError> for Error {
             }
             _ => ErrorKind::Output,
         };
-        let mut out = Error::new(kind, e.to_string()).with_path(&e.path().to_owned());
+        let mut out = Error::new(kind, e.to_string()).with_path(e.path());
         out.layer = e.tensor_name().map(str::to_string);
         out.with_source(e)
     }
@@ -235,9 +235,11 @@ mod tests {
 
     #[test]
     fn solver_failures_name_the_layer() {
-        let e = Error::solve("fc.weight", [4, 8], solve::SolveError::BadPattern {
-            reason: "width 8 is not a multiple of 3".into(),
-        });
+        let e = Error::solve(
+            "fc.weight",
+            [4, 8],
+            solve::SolveError::BadPattern { reason: "width 8 is not a multiple of 3".into() },
+        );
         assert_eq!(e.kind(), ErrorKind::Layer);
         assert_eq!(e.to_string(), "layer 'fc.weight' [4, 8]: width 8 is not a multiple of 3");
         assert!(e.source().is_some());

@@ -39,8 +39,11 @@ pub fn check_distinct(inputs: &[PathBuf], outs: &[(&str, &Path)]) -> Result<()> 
             .with_path(p));
         }
         if let Some((other, _)) = outs[..i].iter().find(|(_, q)| canonical_target(q) == c) {
-            return Err(Error::usage(format!("{flag} {} is the same path as {other}", p.display()))
-                .with_path(p));
+            return Err(Error::usage(format!(
+                "{flag} {} is the same path as {other}",
+                p.display()
+            ))
+            .with_path(p));
         }
     }
     Ok(())
@@ -55,12 +58,16 @@ mod tests {
     fn outputs_must_differ_from_inputs_and_each_other() {
         let input = canonical_target(Path::new("Cargo.toml"));
         assert_eq!(input, Path::new("Cargo.toml").canonicalize().unwrap());
-        let e = check_distinct(&[input.clone()], &[("--report", Path::new("./Cargo.toml"))])
-            .unwrap_err();
+        let e = check_distinct(
+            std::slice::from_ref(&input),
+            &[("--report", Path::new("./Cargo.toml"))],
+        )
+        .unwrap_err();
         assert_eq!(e.kind(), ErrorKind::Usage);
         assert_eq!(e.to_string(), "--report ./Cargo.toml: refusing to overwrite an input file");
-        let e = check_distinct(&[], &[("-o", Path::new("a.json")), ("--trace", Path::new("a.json"))])
-            .unwrap_err();
+        let e =
+            check_distinct(&[], &[("-o", Path::new("a.json")), ("--trace", Path::new("a.json"))])
+                .unwrap_err();
         assert_eq!(e.to_string(), "--trace a.json is the same path as -o");
         assert!(check_distinct(&[input], &[("-o", Path::new("new.safetensors"))]).is_ok());
     }

@@ -167,7 +167,7 @@ fn eval_command_reproduces_the_report_and_is_exact_on_the_dense_model() {
 /// Sentence embeddings of `lines` through `net` (mean pooling, as the
 /// model's 1_Pooling/config.json says).
 fn embed(net: &dyn arch::Network, model: &Path, lines: &[&str]) -> Vec<Vec<f64>> {
-    let tok = lopper::textcal::load_tokenizer(model).unwrap();
+    let tok = lopper::tokenize::load_tokenizer(model).unwrap();
     lines
         .iter()
         .map(|l| {
@@ -212,10 +212,10 @@ fn paraphrases_score_higher_than_unrelated_pairs_dense_and_pruned() {
         let (l, rr) = (embed(net, &model, &left), embed(net, &model, &right));
         let para: Vec<f64> = (0..PAIRS.len()).map(|i| cosine(&l[i], &rr[i])).collect();
         let mut unrelated = Vec::new();
-        for i in 0..PAIRS.len() {
-            for j in 0..PAIRS.len() {
+        for (i, li) in l.iter().enumerate() {
+            for (j, rj) in rr.iter().enumerate() {
                 if i != j {
-                    unrelated.push(cosine(&l[i], &rr[j]));
+                    unrelated.push(cosine(li, rj));
                 }
             }
         }

@@ -365,13 +365,37 @@ mod tests {
     #[test]
     fn shared_flags_parse_the_same_in_prune_and_compare() {
         let p = Cli::try_parse_from([
-            "lopper", "prune", "m", "--text", "t.txt", "--sparsity", "0.5", "-o", "o",
-            "--only", "a.*", "--threads", "3", "--method", "obs",
+            "lopper",
+            "prune",
+            "m",
+            "--text",
+            "t.txt",
+            "--sparsity",
+            "0.5",
+            "-o",
+            "o",
+            "--only",
+            "a.*",
+            "--threads",
+            "3",
+            "--method",
+            "obs",
         ])
         .unwrap();
         let c = Cli::try_parse_from([
-            "lopper", "compare", "m", "--text", "t.txt", "--out-dir", "o", "--only", "a.*",
-            "--threads", "3", "--methods", "obs,l0",
+            "lopper",
+            "compare",
+            "m",
+            "--text",
+            "t.txt",
+            "--out-dir",
+            "o",
+            "--only",
+            "a.*",
+            "--threads",
+            "3",
+            "--methods",
+            "obs,l0",
         ])
         .unwrap();
         match (p.command, c.command) {
@@ -386,8 +410,17 @@ mod tests {
         // Calibration is required, and exclusive.
         assert!(Cli::try_parse_from(["lopper", "compare", "m", "--out-dir", "o"]).is_err());
         assert!(Cli::try_parse_from([
-            "lopper", "prune", "m", "--text", "t", "--activations", "a", "--sparsity", "0.5",
-            "-o", "o"
+            "lopper",
+            "prune",
+            "m",
+            "--text",
+            "t",
+            "--activations",
+            "a",
+            "--sparsity",
+            "0.5",
+            "-o",
+            "o"
         ])
         .is_err());
     }

@@ -114,7 +114,9 @@ fn job_config(
 /// Validate `lopper prune`.
 pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
     let pattern = match (&a.pattern, a.sparsity) {
-        (Some(p), None) => Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--pattern {e}")))?,
+        (Some(p), None) => {
+            Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--pattern {e}")))?
+        }
         (None, Some(s)) => Pattern::parse_sparsity(&s.to_string(), a.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsity {e}")))?,
         _ => return Err(Error::usage("give exactly one of --sparsity and --pattern")),

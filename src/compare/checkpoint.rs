@@ -48,8 +48,9 @@ pub(crate) struct Parking {
 impl Parking {
     /// Create the folder `dir` and register it with `control` as scratch.
     pub(crate) fn create(dir: PathBuf, control: &Control) -> Result<Self> {
-        std::fs::create_dir_all(&dir)
-            .map_err(|e| Error::output(&dir, format!("{}: cannot create it: {e}", dir.display())))?;
+        std::fs::create_dir_all(&dir).map_err(|e| {
+            Error::output(&dir, format!("{}: cannot create it: {e}", dir.display()))
+        })?;
         control.scratch.lock().unwrap_or_else(|e| e.into_inner()).push(dir.clone());
         Ok(Parking { dir })
     }
@@ -137,7 +138,7 @@ mod tests {
         assert_eq!(p.fetch(0, 0, io::Dtype::BF16).unwrap(), vec![0.333984375]);
         let e = p.fetch(9, 9, io::Dtype::F32).unwrap_err();
         assert!(e.to_string().contains("9-9.bin"), "{e}");
-        assert_eq!(control.scratch.lock().unwrap().as_slice(), [dir.clone()]);
+        assert_eq!(control.scratch.lock().unwrap().as_slice(), std::slice::from_ref(&dir));
         drop(p);
         assert!(!dir.exists());
         std::fs::remove_dir_all(&root).unwrap();

@@ -459,7 +459,8 @@ fn measure_speed(
         let Some(path) = &run.model_output else { continue };
         progress(Progress::Writing);
         let model = Model::open(Path::new(path))?;
-        let report = crate::deploy::measure(&model, &speed, &|_, _, _| {}).map_err(|e| e.context(format!("timing {}", run.id)))?;
+        let report = crate::deploy::measure(&model, &speed, &|_, _, _| {})
+            .map_err(|e| e.context(format!("timing {}", run.id)))?;
         if let Some(t) = report.totals.timings.first() {
             run.speed = Some(data::Speed {
                 batch: t.batch,

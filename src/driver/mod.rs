@@ -18,8 +18,8 @@ mod layer;
 mod prune;
 
 pub use layer::{solve_layer, Ridge, Solved, AUTO_RIDGE_GRID, DEFAULT_RIDGE};
-pub use prune::{prune, PruneConfig};
 pub(crate) use prune::model_meta;
+pub use prune::{prune, PruneConfig};
 
 use crate::error::Result;
 use crate::evaluate::EvalOptions;
@@ -175,11 +175,8 @@ pub fn drive<'m>(
     let n_layers: usize = first.blocks().iter().map(Vec::len).sum();
     progress(Progress::Start(n_layers * targets.len()));
     let all: Vec<usize> = (0..targets.len()).collect();
-    let cohorts: Vec<Vec<usize>> = if first.follows_pruned() {
-        all.iter().map(|&r| vec![r]).collect()
-    } else {
-        vec![all]
-    };
+    let cohorts: Vec<Vec<usize>> =
+        if first.follows_pruned() { all.iter().map(|&r| vec![r]).collect() } else { vec![all] };
     let mut next = Some(first);
     let mut done = 0;
     for cohort in cohorts {

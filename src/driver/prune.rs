@@ -2,9 +2,9 @@
 //! and the report, written only when every layer succeeded.
 
 use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target};
-use crate::outputs::{check_distinct, input_files};
 use crate::error::Result;
 use crate::io::{self, Model};
+use crate::outputs::{check_distinct, input_files};
 use crate::report::{LayerReport, PhaseTimes, Report, Settings, Summary, VALIDATION_NOTICE};
 use crate::source::{Calibration, Planned};
 use std::collections::BTreeMap;
@@ -51,7 +51,11 @@ impl Sink for Collect {
 }
 
 /// The `lopper.*` metadata written into a pruned model.
-pub(crate) fn model_meta(job: &JobConfig, target: Target, layers: usize) -> BTreeMap<String, String> {
+pub(crate) fn model_meta(
+    job: &JobConfig,
+    target: Target,
+    layers: usize,
+) -> BTreeMap<String, String> {
     let mut meta = BTreeMap::new();
     meta.insert("lopper.version".to_string(), env!("CARGO_PKG_VERSION").to_string());
     meta.insert("lopper.method".to_string(), target.method.to_string());

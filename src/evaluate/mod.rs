@@ -54,12 +54,12 @@ pub fn kl_divergence(log_p: &[f64], log_q: &[f64]) -> f64 {
         .sum()
 }
 
+/// The dense network and its pruned copy.
+pub type NetworkPair = (Box<dyn Network>, Box<dyn Network>);
+
 /// Build the dense network of `dense` and a copy with `replace` applied
 /// (weights in the file's storage orientation, by tensor name).
-pub fn networks(
-    dense: &Model,
-    replace: &BTreeMap<String, Vec<f64>>,
-) -> Result<(Box<dyn Network>, Box<dyn Network>), Error> {
+pub fn networks(dense: &Model, replace: &BTreeMap<String, Vec<f64>>) -> Result<NetworkPair, Error> {
     let a = arch::load(dense)?;
     let mut b = arch::load(dense)?;
     for (name, values) in replace {

@@ -172,8 +172,9 @@ pub(crate) fn check_layer(name: &str, shape: [usize; 2], params: &PlanParams<'_>
     let available = available_memory();
     for &(method, pattern) in params.targets {
         check_memory(name, d_out, d_in, method, available)?;
-        solve::check_pattern(pattern, d_in)
-            .map_err(|e| Error::layer_unfit(name, format!("layer '{name}' [{d_out}, {d_in}]: {e}")))?;
+        solve::check_pattern(pattern, d_in).map_err(|e| {
+            Error::layer_unfit(name, format!("layer '{name}' [{d_out}, {d_in}]: {e}"))
+        })?;
     }
     Ok(())
 }

@@ -88,8 +88,13 @@ fn plan(model: &Model, net: &dyn Network, params: &PlanParams<'_>) -> Result<Vec
                 }
                 check_layer(&name, [d_out, d_in], params)?;
                 let transposed = lin.transposed;
-                let layer =
-                    Planned { name, shape: [d_out, d_in], dtype: info.dtype, transposed, group: gi };
+                let layer = Planned {
+                    name,
+                    shape: [d_out, d_in],
+                    dtype: info.dtype,
+                    transposed,
+                    group: gi,
+                };
                 planned.push(layer);
             }
         }
@@ -137,9 +142,8 @@ pub fn windows(
     })?;
     let text = read_text(&src.path)?;
     let shown = src.path.display();
-    let ids = tokenize(&tok, &text).map_err(|e| {
-        Error::input(format!("{shown}: cannot tokenize: {e}")).with_path(&src.path)
-    })?;
+    let ids = tokenize(&tok, &text)
+        .map_err(|e| Error::input(format!("{shown}: cannot tokenize: {e}")).with_path(&src.path))?;
     if ids.len() < content {
         return Err(Error::input(format!(
             "{shown}: holds {} tokens, fewer than the {content} each window of --seq-len \
@@ -315,6 +319,6 @@ impl LayerSource for TextCalibration {
     }
 
     fn timing(&self) -> Option<PhaseTimes> {
-        Some(self.timing.clone())
+        Some(self.timing)
     }
 }
