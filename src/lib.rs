@@ -45,7 +45,7 @@
 //! // The OBS sweep reconstructs the outputs better than magnitude pruning.
 //! assert!(errors[1] < errors[0]);
 //! ```
-#![warn(missing_docs)]
+#![deny(missing_docs)]
 
 pub mod arch;
 pub mod calib;

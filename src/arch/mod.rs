@@ -4,7 +4,7 @@
 //! [`Network`] from a model's safetensors tensors, and running it block by
 //! block with a *tap* that sees the input of every group of linear layers.
 //! It knows nothing about pruning; the calibration driver
-//! (`crate::textcal`) calls [`Network::embed`], [`Network::block`] and
+//! (`crate::source::text`) calls [`Network::embed`], [`Network::block`] and
 //! [`Network::set_weight`].
 //!
 //! Families (from `model_type`):

@@ -73,6 +73,7 @@ impl ValueEnum for Scope {
 
 /// Which tensors a command works on.
 #[derive(Debug, Args, Clone)]
+#[command(next_help_heading = "Layer selection")]
 pub struct SelectionArgs {
     /// Only 2-D float tensors whose name matches GLOB (repeatable).
     #[arg(long, value_name = "GLOB")]
@@ -84,6 +85,7 @@ pub struct SelectionArgs {
 
 /// Where the calibration inputs come from, and held-out text.
 #[derive(Debug, Args)]
+#[command(next_help_heading = "Calibration")]
 #[command(group(ArgGroup::new("calibration").required(true).args(["activations", "text"])))]
 pub struct CalibrationArgs {
     /// Safetensors file of calibration inputs: per pruned layer, a tensor
@@ -124,6 +126,7 @@ pub struct CalibrationArgs {
 
 /// How each layer is solved, apart from method and target.
 #[derive(Debug, Args)]
+#[command(next_help_heading = "Solver")]
 pub struct SolverArgs {
     /// Where an unstructured sparsity budget applies.
     #[arg(long, value_enum, default_value = "row")]
@@ -144,6 +147,7 @@ pub struct SolverArgs {
 
 /// How the process runs.
 #[derive(Debug, Args)]
+#[command(next_help_heading = "Run")]
 pub struct RunArgs {
     /// Worker threads (0 = all cores).
     #[arg(long, value_name = "N", default_value_t = 0)]
@@ -151,6 +155,23 @@ pub struct RunArgs {
     /// Print nothing but errors (no progress bar, no table).
     #[arg(long, short = 'q')]
     pub quiet: bool,
+}
+
+/// The flag groups that prune and compare share.
+#[derive(Debug, Args)]
+pub struct JobArgs {
+    /// Where the calibration inputs come from.
+    #[command(flatten)]
+    pub calibration: CalibrationArgs,
+    /// How each layer is solved.
+    #[command(flatten)]
+    pub solver: SolverArgs,
+    /// Which tensors.
+    #[command(flatten)]
+    pub selection: SelectionArgs,
+    /// Threads and output volume.
+    #[command(flatten)]
+    pub run: RunArgs,
 }
 
 /// `lopper prune`.
@@ -179,18 +200,9 @@ pub struct PruneArgs {
     /// Write the local-search objective after every sweep as JSON lines.
     #[arg(long, value_name = "FILE")]
     pub trace: Option<PathBuf>,
+    /// Calibration, solver, selection and run flags.
     #[command(flatten)]
-    #[allow(missing_docs)]
-    pub calibration: CalibrationArgs,
-    #[command(flatten)]
-    #[allow(missing_docs)]
-    pub solver: SolverArgs,
-    #[command(flatten)]
-    #[allow(missing_docs)]
-    pub selection: SelectionArgs,
-    #[command(flatten)]
-    #[allow(missing_docs)]
-    pub run: RunArgs,
+    pub job: JobArgs,
 }
 
 /// `lopper compare`.
@@ -224,18 +236,9 @@ pub struct CompareArgs {
     /// [default: the highest sparsity, else the first pattern]
     #[arg(long, value_name = "S|N:M")]
     pub focus: Option<String>,
+    /// Calibration, solver, selection and run flags.
     #[command(flatten)]
-    #[allow(missing_docs)]
-    pub calibration: CalibrationArgs,
-    #[command(flatten)]
-    #[allow(missing_docs)]
-    pub solver: SolverArgs,
-    #[command(flatten)]
-    #[allow(missing_docs)]
-    pub selection: SelectionArgs,
-    #[command(flatten)]
-    #[allow(missing_docs)]
-    pub run: RunArgs,
+    pub job: JobArgs,
 }
 
 /// `lopper eval`.
@@ -273,8 +276,8 @@ pub struct InspectArgs {
     /// Print JSON instead of a table.
     #[arg(long)]
     pub json: bool,
+    /// Which tensors.
     #[command(flatten)]
-    #[allow(missing_docs)]
     pub selection: SelectionArgs,
 }
 
@@ -298,11 +301,11 @@ pub struct SpeedArgs {
     /// Print JSON instead of a table.
     #[arg(long)]
     pub json: bool,
+    /// Which tensors.
     #[command(flatten)]
-    #[allow(missing_docs)]
     pub selection: SelectionArgs,
+    /// Threads and output volume.
     #[command(flatten)]
-    #[allow(missing_docs)]
     pub run: RunArgs,
 }
 
@@ -334,8 +337,8 @@ pub struct PackArgs {
     /// Output .sprig file (docs/pack-format.md).
     #[arg(short = 'o', long = "output", value_name = "FILE")]
     pub output: PathBuf,
+    /// Which tensors.
     #[command(flatten)]
-    #[allow(missing_docs)]
     pub selection: SelectionArgs,
     /// Print nothing but errors.
     #[arg(long, short = 'q')]
@@ -400,8 +403,8 @@ mod tests {
         .unwrap();
         match (p.command, c.command) {
             (Command::Prune(p), Command::Compare(c)) => {
-                assert_eq!(p.selection.only, c.selection.only);
-                assert_eq!(p.run.threads, c.run.threads);
+                assert_eq!(p.job.selection.only, c.job.selection.only);
+                assert_eq!(p.job.run.threads, c.job.run.threads);
                 assert_eq!(p.method, Method::Obs);
                 assert_eq!(c.methods, [Method::Obs, Method::L0]);
             }

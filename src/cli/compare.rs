@@ -20,7 +20,7 @@ use std::sync::Arc;
 pub(super) fn compare(a: &CompareArgs) -> Result<(), Failure> {
     let cfg = compare_config(a)?;
     super::set_threads(cfg.job.threads);
-    let bar = gauge(a.run.quiet);
+    let bar = gauge(a.job.run.quiet);
     let ids: Vec<String> = cfg
         .runs()
         .iter()
@@ -60,7 +60,7 @@ pub(super) fn compare(a: &CompareArgs) -> Result<(), Failure> {
     bar.finish_and_clear();
     let outcome = outcome?;
     let c = &outcome.comparison;
-    if !a.run.quiet {
+    if !a.job.run.quiet {
         print!("{}", table::render(&[outcome.source()]));
         for o in &outcome.outputs {
             println!("wrote {}", o.display());

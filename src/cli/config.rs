@@ -2,7 +2,7 @@
 //! ([`job_config`] for what prune and compare share), so every command
 //! checks a flag the same way; every message names the option at fault.
 
-use super::args::{CalibrationArgs, CompareArgs, PruneArgs, SelectionArgs, SolverArgs};
+use super::args::{CompareArgs, JobArgs, PruneArgs, SelectionArgs};
 use crate::compare::{data, CompareConfig};
 use crate::driver::{JobConfig, PruneConfig, Target};
 use crate::error::{Error, Result};
@@ -47,13 +47,8 @@ pub fn focus_key(f: &str, keys: &[String]) -> Result<String> {
 
 /// What prune and compare share: calibration, solver settings, selection,
 /// threads.
-fn job_config(
-    model: &std::path::Path,
-    c: &CalibrationArgs,
-    s: &SolverArgs,
-    sel: &SelectionArgs,
-    threads: usize,
-) -> Result<JobConfig> {
+fn job_config(model: &std::path::Path, job: &JobArgs) -> Result<JobConfig> {
+    let (c, s) = (&job.calibration, &job.solver);
     let ridge = super::args::parse_ridge(s.ridge.as_deref()).map_err(Error::usage)?;
     if !(0.0..1.0).contains(&c.holdout) {
         return Err(Error::usage(format!("--holdout {} is outside [0, 1)", c.holdout)));
@@ -103,8 +98,8 @@ fn job_config(
         calibration,
         ridge,
         holdout: c.holdout,
-        selection: selection(sel),
-        threads: resolve_threads(threads),
+        selection: selection(&job.selection),
+        threads: resolve_threads(job.run.threads),
         l0,
         trace: false,
         eval,
@@ -117,11 +112,11 @@ pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
         (Some(p), None) => {
             Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--pattern {e}")))?
         }
-        (None, Some(s)) => Pattern::parse_sparsity(&s.to_string(), a.solver.scope)
+        (None, Some(s)) => Pattern::parse_sparsity(&s.to_string(), a.job.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsity {e}")))?,
         _ => return Err(Error::usage("give exactly one of --sparsity and --pattern")),
     };
-    let mut job = job_config(&a.model, &a.calibration, &a.solver, &a.selection, a.run.threads)?;
+    let mut job = job_config(&a.model, &a.job)?;
     job.trace = a.trace.is_some();
     Ok(PruneConfig {
         job,
@@ -147,7 +142,7 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
         Ok(())
     };
     for &s in &sparsities {
-        let p = Pattern::parse_sparsity(&s.to_string(), a.solver.scope)
+        let p = Pattern::parse_sparsity(&s.to_string(), a.job.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsities: {e}")))?;
         push(p, "--sparsities")?;
     }
@@ -175,7 +170,7 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
     if a.speed_batch == Some(0) {
         return Err(Error::usage("--speed-batch must be at least 1"));
     }
-    let job = job_config(&a.model, &a.calibration, &a.solver, &a.selection, a.run.threads)?;
+    let job = job_config(&a.model, &a.job)?;
     Ok(CompareConfig {
         job,
         methods,
@@ -184,7 +179,7 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
         keep_models: a.keep_models,
         speed_batch: a.speed_batch,
         focus,
-        globs: (a.selection.only.clone(), a.selection.skip.clone()),
+        globs: (a.job.selection.only.clone(), a.job.selection.skip.clone()),
     })
 }
 

@@ -91,7 +91,7 @@ pub fn run() -> i32 {
 fn prune(a: &args::PruneArgs) -> Result<()> {
     let cfg = config::prune_config(a)?;
     set_threads(cfg.job.threads);
-    let bar = progress::bar(a.run.quiet, "pruning", "layers");
+    let bar = progress::bar(a.job.run.quiet, "pruning", "layers");
     let on_progress = |p: Progress<'_>| match p {
         Progress::Start(n) => bar.set_length(n as u64),
         Progress::Solve { done, layer, .. } => {
@@ -111,7 +111,7 @@ fn prune(a: &args::PruneArgs) -> Result<()> {
     let report = driver::prune(&cfg, &on_progress);
     bar.finish_and_clear();
     let report = report?;
-    if !a.run.quiet {
+    if !a.job.run.quiet {
         print!("{}", report.render_table());
         for o in &report.outputs {
             println!("wrote {o}");

@@ -8,7 +8,7 @@
 //! `lopper prune` with the same method, target and settings. Beside it:
 //! the `comparison.json` record ([`data`]), the HTML page ([`page`]), the
 //! terminal summary ([`table`]) and what is kept while running
-//! ([`checkpoint`]).
+//! (`checkpoint`).
 //!
 //! Key decisions:
 //! - Shared statistics: with activations, or text without propagation,
@@ -24,7 +24,7 @@
 //!   runs that finished every layer keep their models (`--keep-models`),
 //!   and the caller exits non-zero.
 //! - `--keep-models` and `--eval-text` park each solved layer's weights
-//!   ([`checkpoint`]) until its run has every layer; then the run's model
+//!   (`checkpoint`) until its run has every layer; then the run's model
 //!   is evaluated and written, and the parked files removed.
 
 mod checkpoint;
@@ -496,5 +496,88 @@ fn settings(cfg: &CompareConfig) -> CompareSettings {
         keep_models: cfg.keep_models,
         focus: cfg.focus.clone().or_else(|| default_focus(&cfg.targets)).unwrap_or_default(),
         eval_text: base.eval.as_ref().map(|e| e.text.display().to_string()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::solve::Scope;
+
+    fn layer(rows: usize, held: usize) -> LayerInfo {
+        LayerInfo {
+            name: "l".into(),
+            shape: [2, 4],
+            calibration_rows: rows,
+            holdout_rows: held,
+            gram_seconds: 0.0,
+        }
+    }
+
+    #[test]
+    fn rows_are_described_from_the_layers_that_have_statistics() {
+        let p = Path::new("acts.safetensors");
+        let d = describe_rows(p, &[layer(90, 10), layer(90, 10), layer(0, 0)]);
+        assert_eq!(d, "activations from acts.safetensors, 90 fitted + 10 held-out rows per layer");
+        let d = describe_rows(p, &[layer(90, 10), layer(45, 5)]);
+        assert!(d.ends_with("in the first layer (other layers differ)"), "{d}");
+    }
+
+    #[test]
+    fn default_focus_is_the_highest_sparsity_else_the_first_pattern() {
+        let u = |s| Pattern::Unstructured { sparsity: s, scope: Scope::Row };
+        let nm = Pattern::NofM { n: 2, m: 4 };
+        assert_eq!(default_focus(&[u(0.5), nm, u(0.9), u(0.7)]).as_deref(), Some("0.9"));
+        assert_eq!(default_focus(&[nm, Pattern::NofM { n: 1, m: 4 }]).as_deref(), Some("2:4"));
+        assert_eq!(default_focus(&[]), None);
+    }
+
+    #[test]
+    fn out_dir_must_be_a_folder_whose_files_are_not_inputs() {
+        let dir = std::env::temp_dir().join(format!("lopper-outdir-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let json = dir.join(JSON_NAME);
+        std::fs::write(&json, "{}").unwrap();
+        let inputs = vec![io::canonical_target(&json)];
+        let e = check_out_dir(&dir, &inputs).unwrap_err();
+        assert_eq!(e.kind(), crate::error::ErrorKind::Usage);
+        assert!(e.to_string().contains("refusing to overwrite the input"), "{e}");
+        let e = check_out_dir(&json, &[]).unwrap_err();
+        assert!(e.to_string().contains("exists and is not a folder"), "{e}");
+        assert!(check_out_dir(&dir.join("new"), &inputs).is_ok());
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
+    #[test]
+    fn runs_are_method_major() {
+        let u = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
+        let nm = Pattern::NofM { n: 2, m: 4 };
+        let job = JobConfig {
+            model: "m".into(),
+            calibration: Calibration::Activations("a".into()),
+            ridge: driver::Ridge::default(),
+            holdout: 0.1,
+            selection: Default::default(),
+            threads: 1,
+            l0: Default::default(),
+            trace: false,
+            eval: None,
+        };
+        let cfg = CompareConfig {
+            job,
+            methods: vec![Method::Obs, Method::L0],
+            targets: vec![u, nm],
+            out_dir: "o".into(),
+            keep_models: false,
+            speed_batch: None,
+            focus: None,
+            globs: (vec![], vec![]),
+        };
+        let ids: Vec<String> = cfg
+            .runs()
+            .iter()
+            .map(|t| data::run_id(t.method.name(), &data::target_key(t.pattern)))
+            .collect();
+        assert_eq!(ids, ["obs-0.5", "obs-2of4", "l0-0.5", "l0-2of4"]);
     }
 }

@@ -164,7 +164,10 @@ pub fn solve_layer(
     let kept = stored_nonzeros(&values, dtype).map_err(|e| {
         Error::new(
             ErrorKind::Solve,
-            format!("layer '{name}': pruned weights cannot be stored as {dtype:?}: {e}"),
+            format!(
+                "layer '{name}': pruned weights cannot be stored as {dtype:?}: {e} (raise --ridge \
+                 to damp the refit, or leave the layer dense with --skip)"
+            ),
         )
         .with_layer(name)
     })?;

@@ -35,7 +35,7 @@ impl<'m> Activations<'m> {
     /// # Errors
     /// An `--only` glob matching nothing, no layer selected, a missing,
     /// non-float or misshapen activation tensor, no rows left to fit, or a
-    /// layer that no target fits ([`super::check_layer`]).
+    /// layer that no target fits (pattern or memory).
     pub fn open(model: &'m Model, path: &Path, params: &PlanParams<'_>) -> Result<Self> {
         let file = TensorFile::open(path)?;
         let all = model.tensors();
