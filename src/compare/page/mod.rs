@@ -203,45 +203,8 @@ pub fn targets_of(sources: &[Source]) -> Vec<String> {
     v
 }
 
-const STYLE: &str = r#"
-:root{--ink:#1d232b;--muted:#5c6570;--rule:#dde1e6;--soft:#f4f6f8;--warm:#fff7e6}
-*{box-sizing:border-box}
-body{margin:0;background:#fff;color:var(--ink);font:14px/1.45 system-ui,-apple-system,"Segoe UI",Roboto,"Noto Sans","DejaVu Sans","Liberation Sans",sans-serif}
-main{max-width:1180px;margin:0 auto;padding:26px 30px 56px}
-header{display:flex;justify-content:space-between;align-items:flex-end;gap:24px;border-bottom:3px solid var(--ink);padding-bottom:12px}
-.kicker{font-size:12px;letter-spacing:.09em;text-transform:uppercase;color:var(--muted);margin:0}
-h1{font-size:27px;line-height:1.2;margin:4px 0 2px;font-weight:700;word-break:break-all}
-h2{font-size:17px;margin:34px 0 4px}
-.lede{color:var(--muted);margin:0 0 12px;max-width:900px}
-.meta{color:var(--muted);font-size:13px;text-align:right;white-space:nowrap}
-.status{display:inline-block;padding:2px 8px;border-radius:3px;font-size:12px;font-weight:600}
-.status.ok{background:#e3f1ec;color:#00573f}.status.partial{background:#fde8dc;color:#8a3200}
-.caution{border-left:4px solid #E69F00;background:var(--warm);padding:10px 14px;margin:18px 0 6px;max-width:980px}
-table{border-collapse:collapse;font-variant-numeric:tabular-nums}
-.summary{width:100%}
-.summary th{font-size:12px;font-weight:600;color:var(--muted);text-align:right;padding:6px 10px;border-bottom:2px solid var(--ink);vertical-align:bottom}
-.summary td{padding:5px 10px;text-align:right;border-bottom:1px solid var(--rule)}
-.summary th:first-child,.summary td:first-child{text-align:left}
-.summary td.m{padding-left:26px}
-.summary tr.group td{background:var(--soft);font-weight:700;text-align:left;border-bottom:1px solid var(--rule);padding-top:9px}
-.summary tr.best td.err{font-weight:700}
-.tag{display:inline-block;margin-left:6px;padding:0 5px;border:1px solid currentColor;border-radius:3px;font-size:10px;font-weight:600;letter-spacing:.04em;color:#00573f;vertical-align:1px}
-.swatch{display:inline-block;vertical-align:-3px;margin-right:7px}
-.dim{color:var(--muted)}
-.charts{display:flex;gap:22px;align-items:flex-start;flex-wrap:wrap}
-figure{margin:10px 0 0}
-figcaption{font-size:12.5px;color:var(--muted);margin-top:2px;max-width:1100px}
-svg.lopper-chart{display:block;height:auto;max-width:100%;font-size:12px}
-svg text{fill:var(--ink)}
-.worst{margin:8px 0 0;padding-left:18px;columns:2;column-gap:40px;font-size:13px}
-.notes{display:grid;grid-template-columns:190px 1fr;gap:4px 18px;margin:8px 0;font-size:13.5px}
-.notes dt{color:var(--muted)}.notes dd{margin:0;word-break:break-word}
-.sources{width:100%;margin-top:6px}.sources td:nth-child(-n+4){white-space:nowrap}
-.sources td,.sources th,.all td,.all th{padding:3px 9px;border-bottom:1px solid var(--rule);text-align:left;font-size:12.5px}
-.all td.n{text-align:right}
-details{margin-top:30px}summary{cursor:pointer;font-weight:600}
-code{font-size:12.5px}
-"#;
+/// The page's stylesheet, inlined into `<style>` (after a newline).
+const STYLE: &str = include_str!("style.css");
 
 /// Render the page for `sources` (already checked compatible), with the
 /// per-layer chart at `focus` (a target key) or at the default target.
@@ -256,7 +219,7 @@ pub fn render(sources: &[Source], focus: Option<&str>) -> String {
         h,
         "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">\
          <meta name=\"viewport\" content=\"width=device-width,initial-scale=1\">\
-         <title>{} · lopper comparison</title><style>{STYLE}</style></head>\n<body>\n<main>\n",
+         <title>{} · lopper comparison</title><style>\n{STYLE}</style></head>\n<body>\n<main>\n",
         esc(&title)
     );
     header(&mut h, &v, &title);
