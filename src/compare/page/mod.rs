@@ -20,175 +20,13 @@
 //! `<svg class="lopper-chart" data-chart="…">`; after layout, the inline
 //! script records how many have a non-empty box in `body[data-rendered-charts]`.
 
+mod view;
+
 use super::data::{target_display, Run, Source, Status, INPUTS_SHARED};
-use super::svg::{decade_label, esc, exact, marker, sci, LinScale, LogScale, Shape};
+use super::svg::{decade_label, esc, exact, marker, sci, LinScale, LogScale};
 use std::collections::BTreeSet;
 use std::fmt::Write as _;
-
-/// Colour and marker of a known method (Okabe–Ito colours).
-fn method_style(method: &str) -> Option<(&'static str, Shape)> {
-    match method {
-        "magnitude" => Some(("#D55E00", Shape::Square)),
-        "scaled" => Some(("#E69F00", Shape::Triangle)),
-        "obs" => Some(("#009E73", Shape::Diamond)),
-        "l0" => Some(("#0072B2", Shape::Circle)),
-        _ => None,
-    }
-}
-
-/// Styles for methods this page does not know (rest of the palette).
-const EXTRA: [(&str, Shape); 3] =
-    [("#CC79A7", Shape::TriangleDown), ("#56B4E9", Shape::Circle), ("#000000", Shape::Square)];
-
-/// Dash patterns by source index.
-const DASHES: [&str; 4] = ["", "7 4", "2 3", "9 3 2 3"];
-
-/// One method from one source.
-struct Series {
-    source: usize,
-    method: String,
-    label: String,
-    colour: &'static str,
-    shape: Shape,
-    filled: bool,
-    dash: &'static str,
-}
-
-/// Which error the charts and the summary lead with.
-#[derive(Clone, Copy, PartialEq)]
-enum Metric {
-    Holdout,
-    Calibration,
-}
-
-impl Metric {
-    fn field(self) -> &'static str {
-        match self {
-            Metric::Holdout => "mean_rel_error_holdout",
-            Metric::Calibration => "mean_rel_error",
-        }
-    }
-    fn words(self) -> &'static str {
-        match self {
-            Metric::Holdout => "held-out",
-            Metric::Calibration => "calibration",
-        }
-    }
-    fn mean(self, r: &Run) -> Option<f64> {
-        match self {
-            Metric::Holdout => r.summary.mean_rel_error_holdout,
-            Metric::Calibration => Some(r.summary.mean_rel_error),
-        }
-        .filter(|_| !r.layers.is_empty())
-    }
-    fn layer(self, l: &crate::report::LayerReport) -> Option<f64> {
-        match self {
-            Metric::Holdout => l.rel_error_holdout,
-            Metric::Calibration => Some(l.rel_error),
-        }
-    }
-}
-
-/// A target column: key, scope, and how it reads.
-#[derive(Clone, Debug, PartialEq)]
-struct Target {
-    key: String,
-    scope: String,
-    sparsity: Option<f64>,
-}
-
-impl Target {
-    fn of(r: &Run) -> Self {
-        Target { key: r.target.clone(), scope: r.scope.clone(), sparsity: r.sparsity }
-    }
-    fn label(&self) -> String {
-        let base = target_display(&self.key);
-        if self.scope == "layer" {
-            format!("{base} per layer")
-        } else {
-            base
-        }
-    }
-    fn matches(&self, r: &Run) -> bool {
-        r.target == self.key && r.scope == self.scope
-    }
-}
-
-/// Everything the sections share.
-struct View<'a> {
-    sources: &'a [Source],
-    series: Vec<Series>,
-    targets: Vec<Target>,
-    metric: Metric,
-    focus: Option<Target>,
-}
-
-impl<'a> View<'a> {
-    fn new(sources: &'a [Source], focus: Option<&str>) -> Self {
-        let mut series = Vec::new();
-        let mut extra = 0;
-        let mut seen = BTreeSet::new();
-        for (si, s) in sources.iter().enumerate() {
-            for r in &s.comparison.runs {
-                if !seen.insert((si, r.method.clone())) {
-                    continue;
-                }
-                let (colour, shape) = method_style(&r.method).unwrap_or_else(|| {
-                    extra += 1;
-                    EXTRA[(extra - 1) % EXTRA.len()]
-                });
-                let shared = sources.iter().enumerate().any(|(j, o)| {
-                    j != si && o.comparison.runs.iter().any(|q| q.method == r.method)
-                });
-                let label =
-                    if shared { format!("{} · {}", r.method, s.label) } else { r.method.clone() };
-                series.push(Series {
-                    source: si,
-                    method: r.method.clone(),
-                    label,
-                    colour,
-                    shape,
-                    filled: si == 0,
-                    dash: DASHES[si % DASHES.len()],
-                });
-            }
-        }
-        let mut targets: Vec<Target> = Vec::new();
-        for s in sources {
-            for r in &s.comparison.runs {
-                let t = Target::of(r);
-                if !targets.contains(&t) {
-                    targets.push(t);
-                }
-            }
-        }
-        // Unstructured by sparsity, then patterns in order of appearance.
-        targets.sort_by(|a, b| match (a.sparsity, b.sparsity) {
-            (Some(x), Some(y)) => x.total_cmp(&y).then(a.scope.cmp(&b.scope)),
-            (Some(_), None) => std::cmp::Ordering::Less,
-            (None, Some(_)) => std::cmp::Ordering::Greater,
-            (None, None) => std::cmp::Ordering::Equal,
-        });
-        let all_held = sources
-            .iter()
-            .flat_map(|s| &s.comparison.runs)
-            .all(|r| r.layers.is_empty() || r.summary.mean_rel_error_holdout.is_some());
-        let metric = if all_held { Metric::Holdout } else { Metric::Calibration };
-        let focus = focus
-            .and_then(|k| targets.iter().find(|t| t.key == k).cloned())
-            .or_else(|| targets.iter().rev().find(|t| t.sparsity.is_some()).cloned())
-            .or_else(|| targets.first().cloned());
-        View { sources, series, targets, metric, focus }
-    }
-
-    fn run(&self, s: &Series, t: &Target) -> Option<&'a Run> {
-        self.sources[s.source].comparison.runs.iter().find(|r| r.method == s.method && t.matches(r))
-    }
-
-    fn layer_count(&self) -> usize {
-        self.sources.first().map(|s| s.comparison.layers.len()).unwrap_or(0)
-    }
-}
+use view::{legend, percent_2, swatch, Metric, Series, Target, View};
 
 /// The target keys present in `sources` (for validating `--focus`).
 pub fn targets_of(sources: &[Source]) -> Vec<String> {
@@ -307,21 +145,6 @@ fn header(h: &mut String, v: &View<'_>, title: &str) {
         "<p class=\"caution\" data-notice><strong>Caution.</strong> {}</p>",
         esc(&first.notice)
     );
-}
-
-fn swatch(s: &Series) -> String {
-    let mut m = String::new();
-    let dash =
-        if s.dash.is_empty() { String::new() } else { format!(" stroke-dasharray=\"{}\"", s.dash) };
-    let _ = write!(
-        m,
-        "<svg class=\"swatch\" width=\"30\" height=\"14\" aria-hidden=\"true\">\
-         <line x1=\"1\" y1=\"7\" x2=\"29\" y2=\"7\" stroke=\"{}\" stroke-width=\"2\"{dash}/>",
-        s.colour
-    );
-    marker(&mut m, s.shape, 15.0, 7.0, 4.5, s.colour, s.filled, "", None);
-    m.push_str("</svg>");
-    m
 }
 
 fn summary_table(h: &mut String, v: &View<'_>) {
@@ -469,11 +292,6 @@ fn summary_table(h: &mut String, v: &View<'_>) {
     }
 }
 
-/// Achieved sparsity in percent with two decimals.
-fn percent_2(z: f64) -> String {
-    format!("{:.2}", 100.0 * z)
-}
-
 /// A ratio for people: `3.4`, `27`, `1,240`.
 fn fmt_factor(k: f64) -> String {
     if k < 10.0 {
@@ -490,62 +308,6 @@ fn fmt_factor(k: f64) -> String {
             out.push(c);
         }
         out
-    }
-}
-
-/// Legend row across the top of a chart.
-fn legend(out: &mut String, series: &[&Series], x0: f64, y: f64, width: f64) {
-    let mut x = x0;
-    let mut y = y;
-    for s in series {
-        let w = 44.0 + 7.2 * s.label.chars().count() as f64;
-        if x + w > x0 + width && x > x0 {
-            x = x0;
-            y += 18.0;
-        }
-        let dash = if s.dash.is_empty() {
-            String::new()
-        } else {
-            format!(" stroke-dasharray=\"{}\"", s.dash)
-        };
-        let _ = write!(
-            out,
-            "<g class=\"legend-item\"><line x1=\"{x:.1}\" y1=\"{y:.1}\" x2=\"{:.1}\" y2=\"{y:.1}\" \
-             stroke=\"{}\" stroke-width=\"2\"{dash}/>",
-            x + 26.0,
-            s.colour
-        );
-        marker(out, s.shape, x + 13.0, y, 4.5, s.colour, s.filled, "", None);
-        let _ = write!(
-            out,
-            "<text x=\"{:.1}\" y=\"{:.1}\">{}</text></g>",
-            x + 32.0,
-            y + 4.0,
-            esc(&s.label)
-        );
-        x += w;
-    }
-}
-
-/// Horizontal log-scale gridlines and labels on the left of a plot.
-fn y_log_axis(out: &mut String, ys: &LogScale, x0: f64, x1: f64) {
-    for m in ys.minors() {
-        let y = ys.px(m);
-        let _ = write!(
-            out,
-            "<line x1=\"{x0}\" x2=\"{x1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#f0f2f4\"/>"
-        );
-    }
-    for e in ys.decades() {
-        let y = ys.px(10f64.powi(e));
-        let _ = write!(
-            out,
-            "<line x1=\"{x0}\" x2=\"{x1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#d5dae0\"/>\
-             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"end\">{}</text>",
-            x0 - 8.0,
-            y + 4.0,
-            decade_label(e)
-        );
     }
 }
 
@@ -729,6 +491,28 @@ fn curves(h: &mut String, v: &View<'_>) {
         h.push_str("</svg></figure>\n");
     }
     h.push_str("</div>\n");
+}
+
+/// Horizontal log-scale gridlines and labels on the left of a plot.
+fn y_log_axis(out: &mut String, ys: &LogScale, x0: f64, x1: f64) {
+    for m in ys.minors() {
+        let y = ys.px(m);
+        let _ = write!(
+            out,
+            "<line x1=\"{x0}\" x2=\"{x1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#f0f2f4\"/>"
+        );
+    }
+    for e in ys.decades() {
+        let y = ys.px(10f64.powi(e));
+        let _ = write!(
+            out,
+            "<line x1=\"{x0}\" x2=\"{x1}\" y1=\"{y:.1}\" y2=\"{y:.1}\" stroke=\"#d5dae0\"/>\
+             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"end\">{}</text>",
+            x0 - 8.0,
+            y + 4.0,
+            decade_label(e)
+        );
+    }
 }
 
 fn per_layer(h: &mut String, v: &View<'_>) {
@@ -1037,19 +821,34 @@ fn all_figures(h: &mut String, v: &View<'_>) {
     h.push_str("</tbody></table></details>\n");
 }
 
+/// Pages, views and attribute readers for the section tests.
 #[cfg(test)]
-mod tests {
+mod testing {
     use super::*;
-    use crate::compare::data::testing::{comparison, run};
-    use crate::solve::{Method, Pattern, Scope};
+    use crate::compare::data::Comparison;
 
-    fn page(c: crate::compare::data::Comparison, focus: Option<&str>) -> String {
-        render(&[Source { label: "x".into(), path: None, comparison: c }], focus)
+    /// `c` as the only source, labelled `x`.
+    pub(super) fn sources(c: Comparison) -> Vec<Source> {
+        vec![Source { label: "x".into(), path: None, comparison: c }]
     }
 
-    fn charts(html: &str) -> Vec<&str> {
+    /// The whole page for one comparison.
+    pub(super) fn page(c: Comparison, focus: Option<&str>) -> String {
+        render(&sources(c), focus)
+    }
+
+    /// The `data-chart` names, in page order.
+    pub(super) fn charts(html: &str) -> Vec<&str> {
         html.split("data-chart=\"").skip(1).map(|s| &s[..s.find('"').unwrap()]).collect()
     }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::testing::{charts, page};
+    use crate::compare::data::testing::{comparison, run};
+    use crate::compare::data::Status;
+    use crate::solve::{Method, Pattern, Scope};
 
     #[test]
     fn chart_set_follows_the_targets() {
@@ -1077,16 +876,6 @@ mod tests {
     }
 
     #[test]
-    fn without_held_out_rows_the_page_leads_with_calibration_error() {
-        let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Layer };
-        let h = page(comparison(1, vec![run(Method::Magnitude, row, 0.25, None, 1)]), None);
-        assert!(h.contains("mean calibration relative error"));
-        assert!(!h.contains("mean held-out relative error"));
-        assert!(h.contains("data-field=\"mean_rel_error\" data-value=\"0.25\""));
-        assert!(h.contains("50% per layer"));
-    }
-
-    #[test]
     fn a_set_stopped_before_any_solve_still_renders() {
         let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
         let mut c = comparison(3, vec![run(Method::L0, row, 0.1, Some(1.0), 0)]);
@@ -1104,5 +893,13 @@ mod tests {
         c.model = "<script>x</script>&.safetensors".into();
         let h = page(c, None);
         assert!(!h.contains("<script>x") && h.contains("&lt;script&gt;x"));
+    }
+
+    #[test]
+    fn the_stylesheet_is_inlined_whole() {
+        let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
+        let h = page(comparison(1, vec![run(Method::Obs, row, 0.1, Some(1.0), 1)]), None);
+        assert!(h.contains(&format!("<style>\n{}</style>", super::STYLE)));
+        assert!(super::STYLE.starts_with(":root{") && super::STYLE.ends_with("}\n"));
     }
 }
