@@ -20,11 +20,11 @@
 //! `<svg class="lopper-chart" data-chart="…">`; after layout, the inline
 //! script records how many have a non-empty box in `body[data-rendered-charts]`.
 
+mod header;
 mod view;
 
-use super::data::{target_display, Run, Source, Status, INPUTS_SHARED};
+use super::data::{target_display, Run, Source, INPUTS_SHARED};
 use super::svg::{decade_label, esc, exact, marker, sci, LinScale, LogScale};
-use std::collections::BTreeSet;
 use std::fmt::Write as _;
 use view::{legend, percent_2, swatch, Metric, Series, Target, View};
 
@@ -60,7 +60,7 @@ pub fn render(sources: &[Source], focus: Option<&str>) -> String {
          <title>{} · lopper comparison</title><style>\n{STYLE}</style></head>\n<body>\n<main>\n",
         esc(&title)
     );
-    header(&mut h, &v, &title);
+    header::section(&mut h, &v, &title);
     summary_table(&mut h, &v);
     curves(&mut h, &v);
     per_layer(&mut h, &v);
@@ -76,75 +76,6 @@ pub fn render(sources: &[Source], focus: Option<&str>) -> String {
          </body></html>\n",
     );
     h
-}
-
-fn header(h: &mut String, v: &View<'_>, title: &str) {
-    let first = &v.sources[0].comparison;
-    let complete = v.sources.iter().all(|s| s.comparison.status == Status::Complete);
-    let status = if complete {
-        "<span class=\"status ok\">complete</span>".to_string()
-    } else {
-        let why: Vec<String> = v
-            .sources
-            .iter()
-            .filter(|s| s.comparison.status != Status::Complete)
-            .map(|s| {
-                let c = &s.comparison;
-                let what = match c.status {
-                    Status::Interrupted => "interrupted".to_string(),
-                    Status::Running => "still running".to_string(),
-                    Status::Failed => {
-                        format!("failed: {}", c.status_detail.clone().unwrap_or_default())
-                    }
-                    Status::Complete => unreachable!(),
-                };
-                if v.sources.len() > 1 {
-                    format!("{} {what}", s.label)
-                } else {
-                    what
-                }
-            })
-            .collect();
-        format!("<span class=\"status partial\">incomplete — {}</span>", esc(&why.join("; ")))
-    };
-    let runs: usize = v.sources.iter().map(|s| s.comparison.runs.len()).sum();
-    let versions: BTreeSet<&str> =
-        v.sources.iter().map(|s| s.comparison.tool_version.as_str()).collect();
-    let dates: Vec<&str> =
-        v.sources.iter().map(|s| s.comparison.created.as_str()).filter(|d| !d.is_empty()).collect();
-    let date = match (dates.iter().min(), dates.iter().max()) {
-        (Some(a), Some(b)) if a == b => a.replace('T', " ").replace('Z', " UTC"),
-        (Some(a), Some(b)) => {
-            let (a, b) = (&a[..10.min(a.len())], &b[..10.min(b.len())]);
-            if a == b {
-                a.to_string()
-            } else {
-                format!("{a} … {b}")
-            }
-        }
-        _ => "date unknown".to_string(),
-    };
-    let versions: Vec<&str> = versions.into_iter().collect();
-    let _ = writeln!(
-        h,
-        "<header><div><p class=\"kicker\">lopper · pruning methods side by side</p>\
-         <h1>{}</h1><div>{status}</div></div>\
-         <div class=\"meta\">{} layers · {runs} runs{}<br>lopper {} · {}</div></header>",
-        esc(title),
-        v.layer_count(),
-        if v.sources.len() > 1 {
-            format!(" from {} reports", v.sources.len())
-        } else {
-            String::new()
-        },
-        esc(&versions.join(", ")),
-        esc(&date),
-    );
-    let _ = writeln!(
-        h,
-        "<p class=\"caution\" data-notice><strong>Caution.</strong> {}</p>",
-        esc(&first.notice)
-    );
 }
 
 fn summary_table(h: &mut String, v: &View<'_>) {
