@@ -1,18 +1,20 @@
 //! The comparison page: one self-contained HTML file (inline CSS and SVG,
 //! one tiny inline script, no network, no fonts) drawn from one or more
-//! [`Source`]s.
+//! [`Source`]s. Entry points: [`render`], and [`targets_of`] to check a
+//! `--focus` before rendering.
 //!
-//! Sections, top to bottom: title and provenance, the validation caution,
-//! the summary table (target × method), error against sparsity (one line per
-//! series, with N:M patterns in a side panel on the same y axis), errors per
-//! layer at the focus target, notes (calibration, settings, sources, how to
-//! read), and every figure in a collapsed table.
-//!
-//! A *series* is one method from one source; it keeps the method's colour
-//! and marker (Okabe & Ito 2008 palette, so colour-blind readers can tell
-//! them apart, and a distinct marker shape so print and greyscale still
-//! work). Series from a second or third source differ by dash and hollow
-//! markers.
+//! Sections, top to bottom, one module each: title and provenance, and the
+//! validation caution (`header`); the summary table, target × method
+//! (`summary`); error against sparsity, one line per series with N:M
+//! patterns in a side panel on the same y axis (`curves`); errors per layer
+//! at the focus target (`per_layer`); notes on calibration, settings,
+//! sources and how to read (`notes`); and every figure in a collapsed table
+//! (`all_figures`). Each section reads the `View` built once here (series
+//! and their styles, targets, the metric the page leads with, the focus
+//! target; module `view`) and appends to one string, so the same sources
+//! give the same bytes. The stylesheet is `style.css`, inlined. SVG scales,
+//! markers and number formats come from `compare::svg`, which the terminal
+//! tables share.
 //!
 //! Every figure drawn or printed carries its exact value in `data-value`
 //! (with `data-source`, `data-run`, `data-field` and, per layer,
@@ -20,6 +22,7 @@
 //! `<svg class="lopper-chart" data-chart="…">`; after layout, the inline
 //! script records how many have a non-empty box in `body[data-rendered-charts]`.
 
+mod all_figures;
 mod curves;
 mod header;
 mod notes;
@@ -28,9 +31,9 @@ mod summary;
 mod view;
 
 use super::data::Source;
-use super::svg::{esc, exact, sci};
+use super::svg::esc;
 use std::fmt::Write as _;
-use view::{percent_2, View};
+use view::View;
 
 /// The target keys present in `sources` (for validating `--focus`).
 pub fn targets_of(sources: &[Source]) -> Vec<String> {
@@ -69,7 +72,7 @@ pub fn render(sources: &[Source], focus: Option<&str>) -> String {
     curves::section(&mut h, &v);
     per_layer::section(&mut h, &v);
     notes::section(&mut h, &v);
-    all_figures(&mut h, &v);
+    all_figures::section(&mut h, &v);
     h.push_str(
         "</main>\n<script>addEventListener('load',function(){var n=0;\
          document.querySelectorAll('svg.lopper-chart').forEach(function(s){\
@@ -80,51 +83,6 @@ pub fn render(sources: &[Source], focus: Option<&str>) -> String {
          </body></html>\n",
     );
     h
-}
-
-fn all_figures(h: &mut String, v: &View<'_>) {
-    h.push_str(
-        "<details><summary>Every figure, per run and layer</summary>\
-         <table class=\"all\" data-table=\"layers\"><thead><tr><th>run</th><th>layer</th>\
-         <th>zeros</th><th>calibration error</th><th>held-out error</th><th>ridge α</th>\
-         <th>sweeps</th><th>swaps</th><th>solve s</th></tr></thead><tbody>\n",
-    );
-    for (si, s) in v.sources.iter().enumerate() {
-        for r in &s.comparison.runs {
-            let name =
-                if v.sources.len() > 1 { format!("{} · {}", s.label, r.id) } else { r.id.clone() };
-            for l in &r.layers {
-                let cell = |field: &str, val: f64, text: String| {
-                    format!(
-                        "<td class=\"n\" data-field=\"{field}\" data-value=\"{}\">{text}</td>",
-                        exact(Some(val))
-                    )
-                };
-                let _ = write!(
-                    h,
-                    "<tr data-source=\"{si}\" data-run=\"{}\" data-layer=\"{}\"><td>{}</td><td><code>{}</code></td>",
-                    esc(&r.id),
-                    esc(&l.name),
-                    esc(&name),
-                    esc(&l.name)
-                );
-                h.push_str(&cell("sparsity", l.sparsity, format!("{}%", percent_2(l.sparsity))));
-                h.push_str(&cell("rel_error", l.rel_error, sci(Some(l.rel_error))));
-                let _ = write!(
-                    h,
-                    "<td class=\"n\" data-field=\"rel_error_holdout\" data-value=\"{}\">{}</td>",
-                    exact(l.rel_error_holdout),
-                    sci(l.rel_error_holdout)
-                );
-                h.push_str(&cell("ridge_alpha", l.ridge_alpha, format!("{}", l.ridge_alpha)));
-                h.push_str(&cell("sweeps", l.sweeps as f64, l.sweeps.to_string()));
-                h.push_str(&cell("swaps", l.swaps as f64, l.swaps.to_string()));
-                h.push_str(&cell("seconds", l.seconds, format!("{:.3}", l.seconds)));
-                h.push_str("</tr>\n");
-            }
-        }
-    }
-    h.push_str("</tbody></table></details>\n");
 }
 
 /// Pages, views and attribute readers for the section tests.
