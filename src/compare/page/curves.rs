@@ -119,11 +119,7 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
                     .iter()
                     .map(|(x, y, _)| format!("{:.1},{:.1}", xs.px(*x), ys.px(*y)))
                     .collect();
-                let dash = if s.dash.is_empty() {
-                    String::new()
-                } else {
-                    format!(" stroke-dasharray=\"{}\"", s.dash)
-                };
+                let dash = s.dash_attr();
                 let _ = write!(
                     h,
                     "<polyline points=\"{}\" fill=\"none\" stroke=\"{}\" stroke-width=\"2.2\" stroke-linejoin=\"round\"{dash}/>",

@@ -111,15 +111,7 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
 
 /// `22,713,216`.
 fn fmt_count(n: usize) -> String {
-    let s = n.to_string();
-    let mut out = String::new();
-    for (i, c) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i) % 3 == 0 {
-            out.push(',');
-        }
-        out.push(c);
-    }
-    out
+    super::view::thousands(&n.to_string())
 }
 
 #[cfg(test)]

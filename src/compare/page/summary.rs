@@ -163,15 +163,7 @@ fn fmt_factor(k: f64) -> String {
     } else if k < 1000.0 {
         format!("{k:.0}")
     } else {
-        let s = format!("{k:.0}");
-        let mut out = String::new();
-        for (i, c) in s.chars().enumerate() {
-            if i > 0 && (s.len() - i) % 3 == 0 {
-                out.push(',');
-            }
-            out.push(c);
-        }
-        out
+        super::view::thousands(&format!("{k:.0}"))
     }
 }
 

@@ -192,10 +192,32 @@ impl<'a> View<'a> {
     }
 }
 
+impl Series {
+    /// ` stroke-dasharray="…"` for a dashed series; empty for a solid one.
+    pub(super) fn dash_attr(&self) -> String {
+        if self.dash.is_empty() {
+            String::new()
+        } else {
+            format!(" stroke-dasharray=\"{}\"", self.dash)
+        }
+    }
+}
+
+/// `n` with commas between groups of three digits (`1234567` → `1,234,567`).
+pub(super) fn thousands(digits: &str) -> String {
+    let mut out = String::new();
+    for (i, c) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
 pub(super) fn swatch(s: &Series) -> String {
     let mut m = String::new();
-    let dash =
-        if s.dash.is_empty() { String::new() } else { format!(" stroke-dasharray=\"{}\"", s.dash) };
+    let dash = s.dash_attr();
     let _ = write!(
         m,
         "<svg class=\"swatch\" width=\"30\" height=\"14\" aria-hidden=\"true\">\
@@ -217,11 +239,7 @@ pub(super) fn legend(out: &mut String, series: &[&Series], x0: f64, y: f64, widt
             x = x0;
             y += 18.0;
         }
-        let dash = if s.dash.is_empty() {
-            String::new()
-        } else {
-            format!(" stroke-dasharray=\"{}\"", s.dash)
-        };
+        let dash = s.dash_attr();
         let _ = write!(
             out,
             "<g class=\"legend-item\"><line x1=\"{x:.1}\" y1=\"{y:.1}\" x2=\"{:.1}\" y2=\"{y:.1}\" \
