@@ -43,6 +43,47 @@ pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
 pub use write::{canonical_target, write_atomic, write_model};
 
+/// The accessors and the one-line `Display` (`path: tensor 'name': detail`)
+/// that [`LoadError`] and [`WriteError`] share: both name a file, maybe a
+/// tensor, and say what went wrong.
+macro_rules! located_error {
+    ($error:ident, $kind:ident, $path_doc:literal) => {
+        impl $error {
+            pub(crate) fn tensor(mut self, name: &str) -> Self {
+                self.tensor = Some(name.to_owned());
+                self
+            }
+
+            /// What went wrong.
+            pub fn kind(&self) -> $kind {
+                self.kind
+            }
+
+            #[doc = $path_doc]
+            pub fn path(&self) -> &Path {
+                &self.path
+            }
+
+            /// The tensor the error is about, if any.
+            pub fn tensor_name(&self) -> Option<&str> {
+                self.tensor.as_deref()
+            }
+        }
+
+        impl fmt::Display for $error {
+            fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                write!(f, "{}: ", self.path.display())?;
+                if let Some(t) = &self.tensor {
+                    write!(f, "tensor '{t}': ")?;
+                }
+                f.write_str(&self.detail)
+            }
+        }
+
+        impl std::error::Error for $error {}
+    };
+}
+
 /// What went wrong while reading a file or model.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 #[non_exhaustive]
@@ -115,11 +156,6 @@ impl LoadError {
         LoadError { path: path.to_owned(), tensor: None, kind, detail: detail.into(), source: None }
     }
 
-    pub(crate) fn tensor(mut self, name: &str) -> Self {
-        self.tensor = Some(name.to_owned());
-        self
-    }
-
     pub(crate) fn io(path: &Path, what: &str, err: std::io::Error) -> Self {
         if err.kind() == std::io::ErrorKind::NotFound {
             return LoadError::new(path, LoadErrorKind::NotFound, "no such file or directory");
@@ -129,38 +165,13 @@ impl LoadError {
         e
     }
 
-    /// What went wrong.
-    pub fn kind(&self) -> LoadErrorKind {
-        self.kind
-    }
-
-    /// The file (or index, or directory) the error is about.
-    pub fn path(&self) -> &Path {
-        &self.path
-    }
-
-    /// The tensor the error is about, if any.
-    pub fn tensor_name(&self) -> Option<&str> {
-        self.tensor.as_deref()
-    }
-
     /// The operating-system error behind an [`LoadErrorKind::Io`] error.
     pub fn io_error(&self) -> Option<&std::io::Error> {
         self.source.as_ref()
     }
 }
 
-impl fmt::Display for LoadError {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "{}: ", self.path.display())?;
-        if let Some(t) = &self.tensor {
-            write!(f, "tensor '{t}': ")?;
-        }
-        f.write_str(&self.detail)
-    }
-}
-
-impl std::error::Error for LoadError {}
+located_error!(LoadError, LoadErrorKind, "The file (or index, or directory) the error is about.");
 
 /// What went wrong while writing a model.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -212,11 +223,6 @@ impl WriteError {
         }
     }
 
-    pub(crate) fn tensor(mut self, name: &str) -> Self {
-        self.tensor = Some(name.to_owned());
-        self
-    }
-
     pub(crate) fn io(path: &Path, what: &str, err: std::io::Error) -> Self {
         let mut e = WriteError::new(path, WriteErrorKind::Io, format!("cannot {what}: {err}"));
         e.io = Some(err);
@@ -227,21 +233,6 @@ impl WriteError {
         let mut e = WriteError::new(path, WriteErrorKind::Load, format!("reading input: {err}"));
         e.load = Some(Box::new(err));
         e
-    }
-
-    /// What went wrong.
-    pub fn kind(&self) -> WriteErrorKind {
-        self.kind
-    }
-
-    /// The output path the error is about.
-    pub fn path(&self) -> &Path {
-        &self.path
-    }
-
-    /// The tensor the error is about, if any.
-    pub fn tensor_name(&self) -> Option<&str> {
-        self.tensor.as_deref()
     }
 
     /// The operating-system error behind an [`WriteErrorKind::Io`] error.
@@ -255,17 +246,7 @@ impl WriteError {
     }
 }
 
-impl fmt::Display for WriteError {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "{}: ", self.path.display())?;
-        if let Some(t) = &self.tensor {
-            write!(f, "tensor '{t}': ")?;
-        }
-        f.write_str(&self.detail)
-    }
-}
-
-impl std::error::Error for WriteError {}
+located_error!(WriteError, WriteErrorKind, "The output path the error is about.");
 
 /// Scratch directories for tests: a fresh folder under the system temp dir,
 /// removed on drop.
