@@ -145,11 +145,11 @@ fn write_gpt2(dir: &Path) {
         }
         for ln in ["ln_1", "ln_2"] {
             t.push(f32s(&format!("{p}.{ln}.weight"), &[D], &ones(D)));
-            t.push(f32s(&format!("{p}.{ln}.bias"), &[D], &vec![0.0; D]));
+            t.push(f32s(&format!("{p}.{ln}.bias"), &[D], &[0.0; D]));
         }
     }
     t.push(f32s("ln_f.weight", &[D], &ones(D)));
-    t.push(f32s("ln_f.bias", &[D], &vec![0.0; D]));
+    t.push(f32s("ln_f.bias", &[D], &[0.0; D]));
     write_st(&dir.join("model.safetensors"), &t);
     let cfg = json!({
         "model_type": "gpt2", "n_embd": D, "n_head": 4, "n_layer": LAYERS,
