@@ -20,6 +20,7 @@
 use std::hint::black_box;
 
 use lopper::deploy::median_seconds as time;
+use lopper::rng::SplitMix64;
 use lopper::sparse::{dense_matmul, DenseKernel, GroupPacked, Par, RowCompressed};
 
 /// Layer shapes `[d_out, d_in]`: a 4096-wide projection as in 7B-parameter
@@ -46,28 +47,9 @@ impl Pattern {
     }
 }
 
-/// SplitMix64.
-struct Rng(u64);
-
-impl Rng {
-    fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-    fn value(&mut self) -> f32 {
-        ((self.next_u64() >> 40) as f32 / (1u64 << 24) as f32) * 2.0 - 1.0
-    }
-    fn below(&mut self, n: usize) -> usize {
-        (self.next_u64() % n as u64) as usize
-    }
-}
-
 /// A pruned weight: per row, exactly `round(s · d_in)` zeros at random
 /// positions (as `lopper prune --sparsity s` leaves it), or 2 of every 4.
-fn pruned_weight(d_out: usize, d_in: usize, pattern: Pattern, rng: &mut Rng) -> Vec<f32> {
+fn pruned_weight(d_out: usize, d_in: usize, pattern: Pattern, rng: &mut SplitMix64) -> Vec<f32> {
     let mut w: Vec<f32> = (0..d_out * d_in).map(|_| rng.value() + 2.0).collect();
     for row in w.chunks_exact_mut(d_in) {
         match pattern {
@@ -75,15 +57,15 @@ fn pruned_weight(d_out: usize, d_in: usize, pattern: Pattern, rng: &mut Rng) -> 
                 let zeros = (s * d_in as f64).round() as usize;
                 let mut idx: Vec<usize> = (0..d_in).collect();
                 for i in 0..zeros {
-                    let j = i + rng.below(d_in - i);
+                    let j = i + rng.below((d_in - i) as u64) as usize;
                     idx.swap(i, j);
                     row[idx[i]] = 0.0;
                 }
             }
             Pattern::TwoOfFour => {
                 for g in row.chunks_exact_mut(4) {
-                    let a = rng.below(4);
-                    let b = (a + 1 + rng.below(3)) % 4;
+                    let a = rng.below(4) as usize;
+                    let b = (a + 1 + rng.below(3) as usize) % 4;
                     g[a] = 0.0;
                     g[b] = 0.0;
                 }
@@ -185,7 +167,7 @@ fn main() {
         Pattern::Unstructured(0.9),
         Pattern::TwoOfFour,
     ];
-    let mut rng = Rng(2024);
+    let mut rng = SplitMix64::new(2024);
     for &streamed in regimes {
         let mut rows = Vec::new();
         for &(d_out, d_in) in &SHAPES {
@@ -219,7 +201,7 @@ fn main() {
                     read_bandwidth(sparse_bytes, threads, min_time)
                 };
                 for &b in &BATCHES {
-                    let x: Vec<f32> = (0..b * d_in).map(|_| rng.value()).collect();
+                    let x = rng.values(b * d_in);
                     let mut y = vec![0.0f32; b * d_out];
                     let mut work = vec![0.0f32; sparse.workspace(b)];
                     let dense = time(min_time, |i| {
@@ -282,14 +264,14 @@ fn print_table(streamed: bool, rows: &[Row]) {
 
 /// Row loop against faer's product for the dense baseline, weights
 /// resident.
-fn dense_choice(par: Par, min_time: f64, rng: &mut Rng) {
+fn dense_choice(par: Par, min_time: f64, rng: &mut SplitMix64) {
     println!("### Dense kernel choice (weights resident)\n");
     println!("| layer | batch | row loop µs | faer µs | tiles µs |");
     println!("|---|---:|---:|---:|---:|");
     for &(d_out, d_in) in &SHAPES {
-        let w: Vec<f32> = (0..d_out * d_in).map(|_| rng.value()).collect();
+        let w = rng.values(d_out * d_in);
         for b in [1, 2, 3, 4, 8, 64] {
-            let x: Vec<f32> = (0..b * d_in).map(|_| rng.value()).collect();
+            let x = rng.values(b * d_in);
             let mut y = vec![0.0f32; b * d_out];
             let mut t = [0.0; 3];
             let kernels = [DenseKernel::Rows, DenseKernel::Faer, DenseKernel::Tiles];

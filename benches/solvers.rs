@@ -9,34 +9,15 @@
 
 use faer::{Mat, Par, Side};
 use lopper::calib::Gram;
+use lopper::rng::SplitMix64;
 use lopper::solve::{self, objective, Method, Pattern, Scope, SolveParams};
 use std::time::Instant;
-
-/// A small, fast, seeded generator (SplitMix64) and Box–Muller normals.
-struct Rng(u64);
-
-impl Rng {
-    fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-    fn uniform(&mut self) -> f64 {
-        ((self.next_u64() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
-    }
-    fn normal(&mut self) -> f64 {
-        let (u, v) = (self.uniform(), self.uniform());
-        (-2.0 * u.ln()).sqrt() * (std::f64::consts::TAU * v).cos()
-    }
-}
 
 /// Activations with the structure seen in trained networks: a low-rank
 /// shared component, per-input scales spread over two decades, and a few
 /// loud outlier inputs. Returns the Gram matrix of `n` rows.
 fn structured_gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
-    let mut rng = Rng(seed);
+    let mut rng = SplitMix64::new(seed);
     let rank = 32.min(d);
     let mix = Mat::from_fn(rank, d, |_, _| rng.normal());
     let scale: Vec<f64> = (0..d)
@@ -70,7 +51,7 @@ fn structured_gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
 }
 
 fn weights(d_out: usize, d_in: usize, seed: u64) -> Mat<f64> {
-    let mut rng = Rng(seed);
+    let mut rng = SplitMix64::new(seed);
     let row_scale: Vec<f64> = (0..d_out).map(|_| 0.5 + rng.uniform()).collect();
     Mat::from_fn(d_out, d_in, |r, _| row_scale[r] * rng.normal() / (d_in as f64).sqrt())
 }

@@ -5,7 +5,8 @@
 #   bash demo-models/run-demo.sh
 #
 # Outputs (pruned models and JSON reports) go to $DEMO_OUT (default target/demo).
-# LOPPER overrides the binary to run (default: the release build of this repo).
+# LOPPER and ACCURACY override the binaries to run (default: the release
+# builds of this repo; `cargo build --release` makes both).
 set -euo pipefail
 
 cd "$(dirname "${BASH_SOURCE[0]}")/.."
@@ -13,6 +14,7 @@ cd "$(dirname "${BASH_SOURCE[0]}")/.."
 DEMO=demo-models/pump-monitor
 OUT="${DEMO_OUT:-target/demo}"
 LOPPER="${LOPPER:-target/release/lopper}"
+ACCURACY="${ACCURACY:-target/release/pump-accuracy}"
 METHODS=(magnitude scaled obs l0)
 
 mkdir -p "$OUT"
@@ -40,4 +42,4 @@ for m in "${METHODS[@]}"; do
 done
 echo
 echo "==> held-out accuracy ($DEMO/eval.safetensors)"
-cargo run --release --quiet --example pump_accuracy -- --eval "$DEMO/eval.safetensors" "${args[@]}"
+"$ACCURACY" --eval "$DEMO/eval.safetensors" "${args[@]}"

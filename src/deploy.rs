@@ -225,19 +225,10 @@ pub struct SpeedReport {
     pub totals: SpeedTotals,
 }
 
-/// SplitMix64 values in [-1, 1): deterministic inputs.
+/// Deterministic inputs: `n` values uniform in [-1, 1) from the crate's
+/// seeded generator.
 fn inputs(n: usize, seed: u64) -> Vec<f32> {
-    let mut s = seed;
-    (0..n)
-        .map(|_| {
-            s = s.wrapping_add(0x9E37_79B9_7F4A_7C15);
-            let mut z = s;
-            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-            z ^= z >> 31;
-            ((z >> 40) as f32 / (1u64 << 24) as f32) * 2.0 - 1.0
-        })
-        .collect()
+    crate::rng::SplitMix64::new(seed).values(n)
 }
 
 /// Time every pruned layer of `model`, dense against sparse, at every batch

@@ -5,6 +5,7 @@
 
 mod common;
 use common::*;
+use lopper::rng::SplitMix64;
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 
@@ -39,11 +40,8 @@ fn tokenizer_json() -> Value {
 /// Log lines from a seeded generator: `the pump on line two was checked at
 /// dawn . pressure steady .` and the like.
 fn log_text(lines: usize, seed: u64) -> String {
-    let mut r = seed;
-    let mut pick = |xs: &[&'static str]| {
-        r = r.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
-        xs[(r >> 33) as usize % xs.len()]
-    };
+    let mut rng = SplitMix64::new(seed);
+    let mut pick = |xs: &[&'static str]| xs[rng.below(xs.len() as u64) as usize];
     let mut out = String::new();
     for _ in 0..lines {
         let parts = [

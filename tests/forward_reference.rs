@@ -26,6 +26,7 @@ use candle_transformers::models as ct;
 use common::*;
 use lopper::arch::{self, Batch, Family, Network};
 use lopper::io::Model;
+use lopper::rng::SplitMix64;
 use serde_json::{json, Value};
 use std::collections::HashMap;
 
@@ -65,10 +66,8 @@ fn ids_tensor(ids: &[Vec<u32>]) -> Tensor {
 
 /// `n` sequences of `l` pseudo-random ids below `vocab`.
 fn random_ids(n: usize, l: usize, vocab: usize, seed: u64) -> Vec<Vec<u32>> {
-    let v = values(n * l, seed);
-    v.chunks(l)
-        .map(|c| c.iter().map(|x| ((x + 1.0) / 2.0 * vocab as f32) as u32).collect())
-        .collect()
+    let mut rng = SplitMix64::new(seed);
+    (0..n).map(|_| (0..l).map(|_| rng.below(vocab as u64) as u32).collect()).collect()
 }
 
 /// For references that return only the last position's logits `[n, vocab]`:

@@ -515,6 +515,7 @@ fn check_layout(
 pub(crate) mod tests {
     use super::*;
     use crate::io::testdir::TestDir;
+    use crate::rng::SplitMix64;
 
     /// A file from a literal header (padded with spaces to a multiple of 8,
     /// as the writer does) and data bytes.
@@ -801,20 +802,13 @@ pub(crate) mod tests {
         for len in 0..good.len() {
             assert!(!exercise(&good[..len]), "a file cut to {len} bytes opened");
         }
-        // xorshift64, seed 0x5eed.
-        let mut s = 0x5eedu64;
-        let mut next = move || {
-            s ^= s << 13;
-            s ^= s >> 7;
-            s ^= s << 17;
-            s
-        };
+        let mut rng = SplitMix64::new(0x5eed);
         let mut opened = 0;
         for _ in 0..2000 {
             let mut b = good.clone();
-            for _ in 0..1 + next() % 3 {
-                let at = (next() % b.len() as u64) as usize;
-                b[at] = next() as u8;
+            for _ in 0..1 + rng.below(3) {
+                let at = rng.below(b.len() as u64) as usize;
+                b[at] = rng.next_u64() as u8;
             }
             opened += usize::from(exercise(&b));
         }

@@ -345,6 +345,7 @@ mod tests {
     use crate::io::model::tests::sharded_dir;
     use crate::io::testdir::TestDir;
     use crate::io::Dtype;
+    use crate::rng::SplitMix64;
 
     fn meta(kv: &[(&str, &str)]) -> BTreeMap<String, String> {
         kv.iter().map(|(k, v)| (k.to_string(), v.to_string())).collect()
@@ -447,35 +448,28 @@ mod tests {
     #[test]
     fn random_files_round_trip_byte_exact() {
         let d = TestDir::new("w-random");
-        // xorshift64, seed 42.
-        let mut s = 42u64;
-        let mut next = move || {
-            s ^= s << 13;
-            s ^= s >> 7;
-            s ^= s << 17;
-            s
-        };
+        let mut rng = SplitMix64::new(42);
         let dtypes = [Dtype::F32, Dtype::F16, Dtype::BF16, Dtype::F64, Dtype::I64, Dtype::U8];
         for case in 0..40 {
             let mut header = Vec::new();
             let mut data = Vec::new();
-            let ntensors = next() % 5;
+            let ntensors = rng.below(5);
             for t in 0..ntensors {
-                let dtype = dtypes[(next() % dtypes.len() as u64) as usize];
-                let shape: Vec<usize> = (0..next() % 3).map(|_| (next() % 4) as usize).collect();
+                let dtype = dtypes[rng.below(dtypes.len() as u64) as usize];
+                let shape: Vec<usize> = (0..rng.below(3)).map(|_| rng.below(4) as usize).collect();
                 let n: usize = shape.iter().product();
                 let start = data.len();
                 if crate::io::dtype::is_float(dtype) {
                     let v: Vec<f64> = (0..n)
-                        .map(|_| match next() % 4 {
+                        .map(|_| match rng.below(4) {
                             0 => 0.0,
                             1 => -0.0,
-                            _ => (next() % 2001) as f64 / 250.0 - 4.0,
+                            _ => rng.below(2001) as f64 / 250.0 - 4.0,
                         })
                         .collect();
                     crate::io::dtype::encode_f64(dtype, &v, &mut data).unwrap();
                 } else {
-                    data.extend((0..n * dtype.bitsize() / 8).map(|_| next() as u8));
+                    data.extend((0..n * dtype.bitsize() / 8).map(|_| rng.next_u64() as u8));
                 }
                 let dims: Vec<String> = shape.iter().map(|x| x.to_string()).collect();
                 header.push(format!(

@@ -211,16 +211,16 @@ multiversion!(fn dense_rows(rows: Range<usize>, w: &[f32], d_in: usize, x: &[f32
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::sparse::testing::{assert_close, pars, reference, Rng};
+    use crate::sparse::testing::{assert_close, pars, reference, SplitMix64};
 
     /// Reference: the dense product by its definition (`testing::reference`).
     #[test]
     fn every_kernel_matches_the_definition() {
-        let mut rng = Rng(31);
+        let mut rng = SplitMix64::new(31);
         for (d_out, d_in) in [(1, 1), (3, 31), (33, 65), (64, 128), (17, 300)] {
-            let w: Vec<f32> = (0..d_out * d_in).map(|_| rng.value()).collect();
+            let w = rng.values(d_out * d_in);
             for b in [1, 2, 7, 64] {
-                let x: Vec<f32> = (0..b * d_in).map(|_| rng.value()).collect();
+                let x = rng.values(b * d_in);
                 let (want, bound) = reference(&w, d_out, d_in, &x, b);
                 for kernel in
                     [DenseKernel::Auto, DenseKernel::Rows, DenseKernel::Faer, DenseKernel::Tiles]

@@ -481,19 +481,19 @@ multiversion!(fn groups_batch_16(rows: Range<usize>, g: Geometry, vals: &[f32], 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::sparse::testing::{assert_close, pars, reference, Rng};
+    use crate::sparse::testing::{assert_close, pars, reference, SplitMix64};
 
     /// A weight with at most `n` nonzeros per group of `m`: each group keeps
     /// a random number of its entries, up to `n`, at random positions.
-    fn random_nm(rng: &mut Rng, d_out: usize, d_in: usize, n: usize, m: usize) -> Vec<f32> {
+    fn random_nm(rng: &mut SplitMix64, d_out: usize, d_in: usize, n: usize, m: usize) -> Vec<f32> {
         let mut w = vec![0.0f32; d_out * d_in];
         for r in 0..d_out {
             for g0 in (0..d_in).step_by(m) {
                 let width = m.min(d_in - g0);
-                let keep = rng.below(n + 1).min(width);
+                let keep = (rng.below(n as u64 + 1) as usize).min(width);
                 let mut pos: Vec<usize> = (0..width).collect();
                 for i in 0..keep {
-                    let j = i + rng.below(width - i);
+                    let j = i + rng.below((width - i) as u64) as usize;
                     pos.swap(i, j);
                     w[r * d_in + g0 + pos[i]] = rng.value() + 1.5;
                 }
@@ -503,7 +503,7 @@ mod tests {
     }
 
     /// Reference: the dense product by its definition (`testing::reference`).
-    fn check(w: &[f32], d_out: usize, d_in: usize, n: usize, m: usize, rng: &mut Rng) {
+    fn check(w: &[f32], d_out: usize, d_in: usize, n: usize, m: usize, rng: &mut SplitMix64) {
         let what = format!("{n}:{m} on {d_out}x{d_in}");
         let sp = GroupPacked::from_dense(w, d_out, d_in, n, m).unwrap();
         assert_eq!(sp.to_dense(), w, "{what}: round trip");
@@ -511,7 +511,7 @@ mod tests {
         let again = GroupPacked::from_parts(d_out, d_in, n, m, parts.0, parts.1);
         assert_eq!(again.as_ref(), Ok(&sp), "{what}: from_parts");
         for b in [1, 3, 8, 16, 33] {
-            let x: Vec<f32> = (0..b * d_in).map(|_| rng.value()).collect();
+            let x = rng.values(b * d_in);
             let (want, bound) = reference(w, d_out, d_in, &x, b);
             for par in pars() {
                 let mut y = vec![f32::NAN; b * d_out];
@@ -524,12 +524,12 @@ mod tests {
 
     #[test]
     fn every_n_m_up_to_16_matches_dense_product() {
-        let mut rng = Rng(21);
+        let mut rng = SplitMix64::new(21);
         for m in 1..=MAX_GROUP {
             for n in 1..=m {
                 // d_in a multiple of m, and one with a narrower last group.
                 for d_in in [3 * m, 2 * m + m.div_ceil(2)] {
-                    let d_out = 1 + rng.below(9);
+                    let d_out = 1 + rng.below(9) as usize;
                     let w = random_nm(&mut rng, d_out, d_in, n, m);
                     check(&w, d_out, d_in, n, m, &mut rng);
                 }
@@ -539,7 +539,7 @@ mod tests {
 
     #[test]
     fn bigger_two_of_four_with_empty_and_full_groups() {
-        let mut rng = Rng(22);
+        let mut rng = SplitMix64::new(22);
         let (d_out, d_in) = (67, 132);
         let mut w = random_nm(&mut rng, d_out, d_in, 2, 4);
         w[..d_in].fill(0.0); // an empty row

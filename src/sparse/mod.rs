@@ -370,29 +370,7 @@ pub(crate) fn check_shapes(d_out: usize, d_in: usize, x: &[f32], b: usize, y: &[
 pub(crate) mod testing {
     //! Seeded random data and the reference product for the kernel tests.
 
-    /// SplitMix64.
-    pub(crate) struct Rng(pub u64);
-
-    impl Rng {
-        pub(crate) fn next_u64(&mut self) -> u64 {
-            self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-            let mut z = self.0;
-            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-            z ^ (z >> 31)
-        }
-        /// Uniform in [0, 1).
-        pub(crate) fn uniform(&mut self) -> f64 {
-            (self.next_u64() >> 11) as f64 / (1u64 << 53) as f64
-        }
-        /// Uniform in [-1, 1).
-        pub(crate) fn value(&mut self) -> f32 {
-            (self.uniform() * 2.0 - 1.0) as f32
-        }
-        pub(crate) fn below(&mut self, n: usize) -> usize {
-            (self.next_u64() % n as u64) as usize
-        }
-    }
+    pub(crate) use crate::rng::SplitMix64;
 
     /// `y = x Wᵀ` by the definition of the matrix product, in f64, plus the
     /// bound `γ_n Σ_k |x_ik w_jk|` on the error of any f32 summation order of
@@ -451,7 +429,7 @@ pub(crate) mod testing {
     /// A `[d_out, d_in]` weight where each entry is nonzero with
     /// probability `density`.
     pub(crate) fn random_sparse(
-        rng: &mut Rng,
+        rng: &mut SplitMix64,
         d_out: usize,
         d_in: usize,
         density: f64,
@@ -517,7 +495,7 @@ mod tests {
         // A hint the weight does not satisfy falls back to rows.
         assert_eq!(choose_layout(&w, 4, 16, Some((1, 4))), Layout::Rows);
         // 90% unstructured: rows are smaller than any N:M.
-        let mut rng = testing::Rng(7);
+        let mut rng = testing::SplitMix64::new(7);
         let w = testing::random_sparse(&mut rng, 64, 256, 0.1);
         assert_eq!(choose_layout(&w, 64, 256, None), Layout::Rows);
         // Fully dense: rows (N = M is never packed).

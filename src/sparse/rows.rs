@@ -440,14 +440,14 @@ multiversion!(fn rows_batch_u32_16(rows: Range<usize>, start: &[u32], cols: &[u3
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::sparse::testing::{assert_close, pars, random_sparse, reference, Rng};
+    use crate::sparse::testing::{assert_close, pars, random_sparse, reference, SplitMix64};
 
     /// Reference: the dense product by its definition (`testing::reference`).
-    fn check(w: &[f32], d_out: usize, d_in: usize, rng: &mut Rng, what: &str) {
+    fn check(w: &[f32], d_out: usize, d_in: usize, rng: &mut SplitMix64, what: &str) {
         let sp = RowCompressed::from_dense(w, d_out, d_in).unwrap();
         assert_eq!(sp.to_dense(), w, "{what}: round trip");
         for b in [1, 2, 3, 8, 9, 17, 32, 64] {
-            let x: Vec<f32> = (0..b * d_in).map(|_| rng.value()).collect();
+            let x = rng.values(b * d_in);
             let (want, bound) = reference(w, d_out, d_in, &x, b);
             for par in pars() {
                 let mut y = vec![f32::NAN; b * d_out];
@@ -460,7 +460,7 @@ mod tests {
 
     #[test]
     fn matches_dense_product_on_awkward_shapes() {
-        let mut rng = Rng(11);
+        let mut rng = SplitMix64::new(11);
         for (d_out, d_in) in [(1, 1), (2, 3), (7, 5), (31, 33), (64, 127), (127, 128), (5, 257)] {
             for density in [0.0, 0.05, 0.3, 0.5, 1.0] {
                 let w = random_sparse(&mut rng, d_out, d_in, density);
@@ -471,7 +471,7 @@ mod tests {
 
     #[test]
     fn empty_and_dense_rows_mixed() {
-        let mut rng = Rng(12);
+        let mut rng = SplitMix64::new(12);
         let (d_out, d_in) = (40, 67);
         let mut w = random_sparse(&mut rng, d_out, d_in, 0.2);
         for r in (0..d_out).step_by(3) {
@@ -487,7 +487,7 @@ mod tests {
         let zero = vec![0.0f32; d_out * d_in];
         let sp = RowCompressed::from_dense(&zero, d_out, d_in).unwrap();
         assert_eq!(sp.nnz(), 0);
-        let x: Vec<f32> = (0..3 * d_in).map(|_| rng.value()).collect();
+        let x = rng.values(3 * d_in);
         let mut y = vec![f32::NAN; 3 * d_out];
         let mut work = vec![0.0; sp.matmul_workspace(3)];
         sp.matmul(&x, 3, &mut y, &mut work, Par::rayon(2));
@@ -499,7 +499,7 @@ mod tests {
 
     #[test]
     fn wide_layers_use_32_bit_indices() {
-        let mut rng = Rng(13);
+        let mut rng = SplitMix64::new(13);
         let d_out = 3;
         for (d_in, width) in [(65_536, 2), (65_537, 4), (70_001, 4)] {
             let w = random_sparse(&mut rng, d_out, d_in, 0.01);

@@ -185,19 +185,10 @@ pub fn python(code: &str, args: &[&str]) -> String {
     String::from_utf8_lossy(&o.stdout).into_owned()
 }
 
-/// Deterministic pseudo-random values in [-1, 1) (SplitMix64).
+/// Deterministic pseudo-random values in [-1, 1): `n` draws of lopper's
+/// seeded generator.
 pub fn values(n: usize, seed: u64) -> Vec<f32> {
-    let mut s = seed;
-    (0..n)
-        .map(|_| {
-            s = s.wrapping_add(0x9E37_79B9_7F4A_7C15);
-            let mut z = s;
-            z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-            z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-            z ^= z >> 31;
-            ((z >> 40) as f32 / (1u64 << 24) as f32) * 2.0 - 1.0
-        })
-        .collect()
+    lopper::rng::SplitMix64::new(seed).values(n)
 }
 
 /// The real model's folder (the 6-layer BERT sentence encoder shipped by the

@@ -1,9 +1,15 @@
-//! Accuracy of (pruned) pump-monitor models on the held-out set.
+//! `pump-accuracy`: accuracy of (pruned) pump-monitor models on the
+//! held-out set.
 //!
 //! ```text
-//! cargo run --release --example pump_accuracy -- [--eval EVAL.safetensors] \
+//! target/release/pump-accuracy [--eval EVAL.safetensors] \
 //!     MODEL.safetensors [--label NAME] [--report REPORT.json] [MODEL2 ...]
 //! ```
+//!
+//! A second binary of the package, built by the plain `cargo build --release`
+//! from normal dependencies only (anyhow, safetensors, half, serde_json), so
+//! the demo needs none of the dev-dependencies. Paths are relative to the
+//! working directory; run it from the repository root.
 //!
 //! Prints one line per model: path, eval accuracy, and the fraction of zero
 //! weights in the hidden layers (`hidden.*.weight`). `--label` and `--report`
@@ -149,7 +155,7 @@ fn run() -> Result<()> {
                 }
             }
             "-h" | "--help" => {
-                println!("usage: pump_accuracy [--eval EVAL] MODEL [--label NAME] [--report REPORT.json] [MODEL ...]");
+                println!("usage: pump-accuracy [--eval EVAL] MODEL [--label NAME] [--report REPORT.json] [MODEL ...]");
                 return Ok(());
             }
             flag if flag.starts_with("--") => bail!("unknown option {flag}"),
