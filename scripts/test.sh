@@ -22,6 +22,6 @@ log=$(mktemp)
 trap 'rm -f "$log"' EXIT
 # Benches are left out (`cargo bench --bench solvers` runs them).
 cargo test --release --doc 2>&1 | tee -a "$log"
-cargo test --release --lib --bins --tests --examples "$@" 2>&1 | tee -a "$log"
+cargo test --release --lib --bins --tests "$@" 2>&1 | tee -a "$log"
 # One closing line over every test binary.
 awk '/^test result:/ { p += $4; f += $6 } END { printf "lopper: %d passed, %d failed\n", p, f }' "$log"
