@@ -26,11 +26,13 @@
 //!   in f64 with one product so the recursively updated gradient does not
 //!   drift. Capped refits (between sweeps) may run the products in f32.
 //!
+//! [`refit_rows`] sends each row to one of the two by its support size.
+//!
 //! All accumulation is in f64: the Gram matrix, the products and the dot
 //! products that give step lengths and objectives.
 
-use super::{col, Problem, State};
-use crate::solve::SolveError;
+use super::{col, for_each, Problem, State};
+use crate::solve::{SolveError, SolveParams};
 use faer::dyn_stack::{MemBuffer, MemStack, StackReq};
 use faer::linalg::cholesky::llt::factor::{
     cholesky_in_place, cholesky_in_place_scratch, LltRegularization,
@@ -126,6 +128,62 @@ pub(crate) fn cholesky_row(
         }
     }
     Ok(gradient_row(a, w, b, w_hat, keep, g))
+}
+
+/// Rows refit by CG (support larger than the Cholesky limit) among `rows`.
+pub(crate) fn cg_rows(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> Vec<bool> {
+    keep.chunks(d_in)
+        .zip(rows)
+        .map(|(k, &r)| r && k.iter().filter(|&&x| x).count() > chol_max)
+        .collect()
+}
+
+/// Refit the rows flagged in `rows`: those keeping at most
+/// [`crate::solve::L0Params::chol_limit`] weights exactly by per-row
+/// Cholesky, the rest by batched CG warm-started from `ŵ`, capped at
+/// `max_iter` iterations (or stopped at `cg_tol`). Returns CG iterations.
+///
+/// # Errors
+/// [`SolveError::NotPositiveDefinite`] when some `A_SS` cannot be factored.
+pub(crate) fn refit_rows(
+    prob: &Problem<'_>,
+    state: &mut State,
+    rows: &[bool],
+    params: &SolveParams,
+    max_iter: usize,
+    par: Par,
+) -> Result<usize, SolveError> {
+    let d_in = prob.d_in;
+    let by_cg = cg_rows(&state.keep, rows, d_in, params.l0.chol_limit(d_in));
+    let err = std::sync::Mutex::new(None);
+    let items: Vec<_> = state
+        .w_hat
+        .chunks_mut(d_in)
+        .zip(state.g.chunks_mut(d_in))
+        .zip(state.keep.chunks(d_in))
+        .zip(state.f.iter_mut())
+        .enumerate()
+        .filter(|(r, _)| rows[*r] && !by_cg[*r])
+        .collect();
+    for_each(items, par, |(r, (((w_hat, g), keep), f))| {
+        let rg = r * d_in..(r + 1) * d_in;
+        match cholesky_row(prob.a, &prob.w[rg.clone()], &prob.b[rg], w_hat, keep, g) {
+            Ok(v) => *f = v,
+            Err(e) => *err.lock().unwrap() = Some(e),
+        }
+    });
+    if let Some(e) = err.into_inner().unwrap() {
+        return Err(e);
+    }
+    if by_cg.contains(&true) {
+        // The capped refits run their products in f32; the final one in f64
+        // (an f32 pass to 1e-4 first saved nothing: CG restarted in f64
+        // needed as many iterations from there to 1e-6).
+        let single = max_iter < params.l0.cg_max_iter;
+        Ok(pcg(prob, state, &by_cg, params.l0.cg_tol, max_iter, single, par))
+    } else {
+        Ok(0)
+    }
 }
 
 /// Row-major view of a `rows x cols` slice.
