@@ -349,7 +349,7 @@ mod tests {
         for j in 0..12 {
             a[(j, j)] += lambda;
         }
-        let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+        let prob = Problem::new(w.as_ref(), a.as_ref(), lambda, Par::Seq);
         let refit_value = |keep: &[bool]| {
             let (mut wh, mut g) = (vec![0.0; 12], vec![0.0; 12]);
             refit::cholesky_row(a.as_ref(), &prob.w, &prob.b, &mut wh, keep, &mut g).unwrap()

@@ -110,7 +110,8 @@ use std::time::Instant;
 use swap::RowMut;
 
 /// Solve the L0-constrained problem for every row of `w`; `a` is the
-/// ridge-regularised Gram matrix.
+/// ridge-regularised Gram matrix `H + λI` and `lambda` its ridge λ
+/// (reported in errors and in [`SolveInfo::lambda`]).
 ///
 /// # Errors
 /// [`SolveError::NotPositiveDefinite`] when `A` (or some `A_SS`) cannot be
@@ -118,6 +119,7 @@ use swap::RowMut;
 pub fn solve(
     w: MatRef<'_, f64>,
     a: MatRef<'_, f64>,
+    lambda: f64,
     params: &SolveParams,
     par: Par,
 ) -> Result<Pruned, SolveError> {
@@ -129,13 +131,14 @@ pub fn solve(
         owned = a.to_owned();
         owned.as_ref()
     };
-    let prob = Problem::new(w, a, par);
+    let prob = Problem::new(w, a, lambda, par);
     clock.lap("setup");
 
     // 1. The better of the two refit starts.
     let start = starts::best(&prob, w, params, par, &mut clock)?;
     let mut state = start.state;
     let mut info = SolveInfo {
+        lambda,
         init: Some(start.init),
         objective_initial: state.total(),
         refit_iterations: start.cg_iters,
@@ -168,6 +171,8 @@ pub(crate) fn col(a: MatRef<'_, f64>, c: usize) -> &'_ [f64] {
 /// Fixed data of one layer, rows stored row-major.
 pub(crate) struct Problem<'s> {
     pub a: MatRef<'s, f64>,
+    /// The ridge λ in `A`, for error reports.
+    pub lambda: f64,
     pub d_out: usize,
     pub d_in: usize,
     /// `W`, row-major.
@@ -183,7 +188,7 @@ pub(crate) struct Problem<'s> {
 }
 
 impl<'s> Problem<'s> {
-    pub(crate) fn new(w: MatRef<'_, f64>, a: MatRef<'s, f64>, par: Par) -> Self {
+    pub(crate) fn new(w: MatRef<'_, f64>, a: MatRef<'s, f64>, lambda: f64, par: Par) -> Self {
         let (d_out, d_in) = (w.nrows(), w.ncols());
         let mut wr = vec![0.0; d_out * d_in];
         for r in 0..d_out {
@@ -209,7 +214,7 @@ impl<'s> Problem<'s> {
         let diag: Vec<f64> = (0..d_in).map(|j| a[(j, j)]).collect();
         let inv_diag = diag.iter().map(|&x| 1.0 / x).collect();
         let a32 = Mat::from_fn(d_in, d_in, |i, j| a[(i, j)] as f32);
-        Problem { a, d_out, d_in, w: wr, b, dense, diag, inv_diag, a32 }
+        Problem { a, lambda, d_out, d_in, w: wr, b, dense, diag, inv_diag, a32 }
     }
 }
 

@@ -81,7 +81,7 @@ fn obs_start(
     clock: &mut Clock,
 ) -> Result<(State, usize), SolveError> {
     let d_in = prob.d_in;
-    let ob = obs::sweep(w, prob.a, params.pattern, params.obs_block, par)?;
+    let ob = obs::sweep(w, prob.a, prob.lambda, params.pattern, params.obs_block, par)?;
     clock.lap("obs sweep");
     let mut keep = mask_support(&Mask::nonzeros(ob.weight.as_ref()));
     complete_support(&mut keep, scores, params.pattern);

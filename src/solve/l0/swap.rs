@@ -407,7 +407,7 @@ mod tests {
         for j in 0..10 {
             a[(j, j)] += lambda;
         }
-        let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+        let prob = Problem::new(w.as_ref(), a.as_ref(), lambda, Par::Seq);
         let keep: Vec<bool> = (0..20).map(|c| c % 10 < 5).collect();
         let st = State::from_support(&prob, keep, None, Par::Seq);
         for r in 0..2 {

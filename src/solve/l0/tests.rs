@@ -170,12 +170,13 @@ impl Tally {
 /// Run the solver and the two baselines on one instance; returns
 /// (l0, greedy, obs) objectives after checking conformity, exact zeros
 /// and monotonicity.
-fn run_methods(w: &Mat<f64>, a: &Mat<f64>, pattern: Pattern) -> (f64, f64, f64) {
+fn run_methods(w: &Mat<f64>, a: &Mat<f64>, lambda: f64, pattern: Pattern) -> (f64, f64, f64) {
     let mut params = l0_params(pattern);
     params.l0.trace = true;
-    let got = solve(w.as_ref(), a.as_ref(), &params, Par::Seq).unwrap();
+    let got = solve(w.as_ref(), a.as_ref(), lambda, &params, Par::Seq).unwrap();
     check_output(w, a, &got, pattern);
-    let ob = obs::sweep(w.as_ref(), a.as_ref(), pattern, params.obs_block, Par::Seq).unwrap();
+    let ob =
+        obs::sweep(w.as_ref(), a.as_ref(), lambda, pattern, params.obs_block, Par::Seq).unwrap();
     (objective(w, &got.weight, a), greedy_value(w, a, pattern), objective(w, &ob.weight, a))
 }
 
@@ -232,14 +233,14 @@ fn conforms_and_never_increases() {
             let mut params = l0_params(pattern);
             params.l0.trace = true;
             params.l0.chol_max = Some(chol_max);
-            let got = solve(w.as_ref(), a.as_ref(), &params, par).unwrap();
+            let got = solve(w.as_ref(), a.as_ref(), lambda, &params, par).unwrap();
             check_output(&w, &a, &got, pattern);
             assert_eq!(got.info.trace.len(), got.info.sweeps + 1, "{pattern:?}");
             assert!(got.info.init.is_some());
             if chol_max == 0 {
                 assert!(got.info.refit_iterations > 0, "{pattern:?}: CG path not taken");
                 // The final refit leaves every row within cg_tol.
-                let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+                let prob = Problem::new(w.as_ref(), a.as_ref(), lambda, Par::Seq);
                 let d = w.ncols();
                 for r in 0..w.nrows() {
                     let wr: Vec<f64> = (0..d).map(|c| got.weight[(r, c)]).collect();
@@ -265,7 +266,8 @@ fn conforms_and_never_increases() {
                 }
             }
             // Not worse than either start: the OBS sweep, refit or not.
-            let ob = obs::sweep(w.as_ref(), a.as_ref(), pattern, params.obs_block, par).unwrap();
+            let ob =
+                obs::sweep(w.as_ref(), a.as_ref(), lambda, pattern, params.obs_block, par).unwrap();
             let f_obs = objective(&w, &ob.weight, &a);
             assert!(
                 got.info.objective_final <= f_obs * (1.0 + 1e-9),
@@ -291,7 +293,7 @@ fn edge_budgets() {
     ] {
         let mut params = l0_params(pattern);
         params.l0.trace = true;
-        let got = solve(w.as_ref(), a.as_ref(), &params, Par::Seq).unwrap();
+        let got = solve(w.as_ref(), a.as_ref(), lambda, &params, Par::Seq).unwrap();
         check_output(&w, &a, &got, pattern);
         // A full refit solves A ŵ = A w: error O(ε κ(A)) relative.
         assert!(
@@ -304,7 +306,7 @@ fn edge_budgets() {
         Pattern::Unstructured { sparsity: 0.99, scope: Scope::Row },
         Pattern::Unstructured { sparsity: 0.999, scope: Scope::Layer },
     ] {
-        let got = solve(w.as_ref(), a.as_ref(), &l0_params(pattern), Par::Seq).unwrap();
+        let got = solve(w.as_ref(), a.as_ref(), lambda, &l0_params(pattern), Par::Seq).unwrap();
         assert_eq!(got.weight, Mat::<f64>::zeros(4, 16));
         assert!((got.info.objective_final - dense).abs() <= 1e-12 * dense);
     }
@@ -323,7 +325,7 @@ fn budget_runs_out_cleanly() {
         params.l0.max_sweeps = sweeps;
         params.l0.max_seconds = secs;
         params.l0.trace = true;
-        let got = solve(w.as_ref(), a.as_ref(), &params, Par::Seq).unwrap();
+        let got = solve(w.as_ref(), a.as_ref(), lambda, &params, Par::Seq).unwrap();
         check_output(&w, &a, &got, pattern);
         assert_eq!(got.info.sweeps, 0);
         assert_eq!(got.info.objective_final, got.info.objective_initial);
@@ -351,7 +353,7 @@ fn per_row_matches_exhaustive_enumeration() {
                         all.iter().map(|s| support_value(&a, &wr, s)).fold(f64::INFINITY, f64::min)
                     })
                     .sum();
-                let (l0, greedy, ob) = run_methods(&w, &a, pattern);
+                let (l0, greedy, ob) = run_methods(&w, &a, lambda, pattern);
                 tally.add(opt, l0, greedy, ob);
             }
         }
@@ -381,7 +383,7 @@ fn two_four_matches_exhaustive_enumeration() {
                     all.iter().map(|s| support_value(&a, &wr, s)).fold(f64::INFINITY, f64::min)
                 })
                 .sum();
-            let (l0, greedy, ob) = run_methods(&w, &a, pattern);
+            let (l0, greedy, ob) = run_methods(&w, &a, lambda, pattern);
             tally.add(opt, l0, greedy, ob);
         }
     }
@@ -428,7 +430,7 @@ fn per_layer_matches_exhaustive_enumeration() {
                             .sum::<f64>()
                     })
                     .fold(f64::INFINITY, f64::min);
-                let (l0, greedy, ob) = run_methods(&w, &a, pattern);
+                let (l0, greedy, ob) = run_methods(&w, &a, lambda, pattern);
                 tally.add(opt, l0, greedy, ob);
             }
         }
