@@ -183,17 +183,14 @@ fn choose_group(w: &Mat<f64>, u: &Mat<f64>, keep: &mut [bool], j0: usize, n: usi
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::rng::SplitMix64;
     use crate::solve::mask::Mask;
     use crate::solve::regularised;
 
     fn gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
-        // Correlated inputs: x_j = z_j + 0.6 z_{j-1}, z from a fixed LCG.
-        let mut s = seed;
-        let mut next = || {
-            s = s.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
-            ((s >> 11) as f64 / (1u64 << 53) as f64) - 0.5
-        };
-        let z = Mat::from_fn(n, d, |_, _| next());
+        // Correlated inputs: x_j = z_j + 0.6 z_{j-1}, z uniform in [-½, ½).
+        let mut rng = SplitMix64::new(seed);
+        let z = Mat::from_fn(n, d, |_, _| rng.uniform() - 0.5);
         let x =
             Mat::from_fn(n, d, |i, j| z[(i, j)] + if j > 0 { 0.6 * z[(i, j - 1)] } else { 0.0 });
         x.transpose() * &x

@@ -1,7 +1,7 @@
 //! A timing run of the local search on one large synthetic layer
 //! (ignored by default).
 
-use super::tests::Lcg;
+use crate::rng::SplitMix64;
 use crate::solve::objective::relative_error;
 use crate::solve::{prune_layer, regularised, ridge_lambda, Method, Pattern, Scope, SolveParams};
 use faer::linalg::matmul::matmul;
@@ -20,7 +20,7 @@ use std::time::Instant;
 fn bench_1536() {
     let (n, d) = (16384, 1536);
     let par = Par::rayon(0);
-    let mut rng = Lcg::new(1);
+    let mut rng = SplitMix64::new(1);
     let t = Instant::now();
     let load = Mat::from_fn(8, d, |_, _| rng.normal());
     let scale: Vec<f64> = (0..d)

@@ -356,7 +356,7 @@ pub(crate) fn flip(a: MatRef<'_, f64>, row: &mut RowMut<'_>, mv: &Move) {
 
 #[cfg(test)]
 mod tests {
-    use super::super::tests::{instance, Lcg};
+    use super::super::tests::instance;
     use super::super::{refit, Problem, State};
     use super::*;
 
@@ -393,7 +393,7 @@ mod tests {
     fn priced_moves_match_refit_differences() {
         // Δ from the block formulas against f(S') − f(S) with both supports
         // refit from scratch by Cholesky.
-        let mut rng = Lcg::new(21);
+        let mut rng = crate::rng::SplitMix64::new(21);
         let (x, w, lambda) = instance(&mut rng, 60, 12, 1, 0.01);
         let mut a = x.transpose() * &x;
         for j in 0..12 {

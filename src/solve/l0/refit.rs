@@ -376,7 +376,7 @@ pub(crate) fn pcg(
 
 #[cfg(test)]
 mod tests {
-    use super::super::tests::{instance, Lcg};
+    use super::super::tests::instance;
     use super::super::{Problem, State};
     use super::*;
     use faer::linalg::solvers::SolveLstsq;
@@ -428,7 +428,7 @@ mod tests {
 
     #[test]
     fn refit_matches_qr_least_squares() {
-        let mut rng = Lcg::new(11);
+        let mut rng = crate::rng::SplitMix64::new(11);
         for trial in 0..12 {
             let d = 6 + trial % 7;
             let (x, w, lambda) =

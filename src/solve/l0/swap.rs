@@ -392,7 +392,7 @@ pub(crate) fn budget_moves(
 
 #[cfg(test)]
 mod tests {
-    use super::super::tests::{instance, Lcg};
+    use super::super::tests::instance;
     use super::super::{refit, Problem, State};
     use super::*;
     use faer::Par;
@@ -401,7 +401,7 @@ mod tests {
     fn swap_delta_matches_direct_objective() {
         // Δ(i, j) and t* against f recomputed from scratch (a fresh
         // gradient) after applying the move.
-        let mut rng = Lcg::new(8);
+        let mut rng = crate::rng::SplitMix64::new(8);
         let (x, w, lambda) = instance(&mut rng, 50, 10, 2, 0.01);
         let mut a = x.transpose() * &x;
         for j in 0..10 {

@@ -4,36 +4,17 @@
 
 use super::refit;
 use super::{solve, Problem};
+use crate::rng::SplitMix64;
 use crate::solve::baseline::scaled_scores;
 use crate::solve::mask::{select, Mask};
 use crate::solve::{budget, obs, Pattern, Pruned, Scope, SolveParams};
 use faer::{Mat, Par};
 
-/// A tiny deterministic generator (64-bit LCG, Knuth's MMIX constants).
-pub(crate) struct Lcg(u64);
-
-impl Lcg {
-    pub(crate) fn new(seed: u64) -> Self {
-        Lcg(seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) ^ 0xD1B5_4A32_D192_ED03)
-    }
-    /// Uniform in [0, 1).
-    pub(crate) fn uniform(&mut self) -> f64 {
-        self.0 = self.0.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
-        (self.0 >> 11) as f64 / (1u64 << 53) as f64
-    }
-    /// Standard normal (Box–Muller).
-    pub(crate) fn normal(&mut self) -> f64 {
-        let u = self.uniform().max(1e-300);
-        let v = self.uniform();
-        (-2.0 * u.ln()).sqrt() * (2.0 * std::f64::consts::PI * v).cos()
-    }
-}
-
 /// Calibration inputs with correlated columns (a shared factor plus a
 /// moving average) and two outlier columns 8x louder, dense weights, and
 /// `λ = α · mean diag(XᵀX)`.
 pub(crate) fn instance(
-    rng: &mut Lcg,
+    rng: &mut SplitMix64,
     n: usize,
     d: usize,
     rows: usize,
@@ -41,8 +22,8 @@ pub(crate) fn instance(
 ) -> (Mat<f64>, Mat<f64>, f64) {
     let z = Mat::from_fn(n, d + 1, |_, _| rng.normal());
     let common: Vec<f64> = (0..n).map(|_| rng.normal()).collect();
-    let o1 = (rng.uniform() * d as f64) as usize;
-    let o2 = (rng.uniform() * d as f64) as usize;
+    let o1 = rng.below(d as u64) as usize;
+    let o2 = rng.below(d as u64) as usize;
     let x = Mat::from_fn(n, d, |i, j| {
         let v = z[(i, j + 1)] + 0.7 * z[(i, j)] + 0.5 * common[i];
         if j == o1 || j == o2 {
@@ -212,7 +193,7 @@ fn check_output(w: &Mat<f64>, a: &Mat<f64>, got: &Pruned, pattern: Pattern) {
 fn conforms_and_never_increases() {
     // Every pattern, both refit paths (per-row Cholesky, batched CG via
     // chol_max = 0), sequential and parallel.
-    let mut rng = Lcg::new(99);
+    let mut rng = SplitMix64::new(99);
     let (x, w, lambda) = instance(&mut rng, 200, 48, 12, 0.01);
     let a = gram(&x, lambda);
     let patterns = [
@@ -282,7 +263,7 @@ fn conforms_and_never_increases() {
 fn edge_budgets() {
     // Keep everything: the refit reproduces W (objective at rounding
     // level). Keep nothing: all zeros, objective = Σ wᵀAw.
-    let mut rng = Lcg::new(4);
+    let mut rng = SplitMix64::new(4);
     let (x, w, lambda) = instance(&mut rng, 60, 16, 4, 0.01);
     let a = gram(&x, lambda);
     let dense: f64 = objective(&w, &Mat::zeros(4, 16), &a);
@@ -316,7 +297,7 @@ fn edge_budgets() {
 fn budget_runs_out_cleanly() {
     // A zero sweep budget returns the better start, refit; a zero time
     // budget likewise.
-    let mut rng = Lcg::new(3);
+    let mut rng = SplitMix64::new(3);
     let (x, w, lambda) = instance(&mut rng, 100, 32, 6, 0.01);
     let a = gram(&x, lambda);
     let pattern = Pattern::Unstructured { sparsity: 0.75, scope: Scope::Row };
@@ -336,10 +317,17 @@ fn budget_runs_out_cleanly() {
 #[test]
 fn per_row_matches_exhaustive_enumeration() {
     // Source: exhaustive enumeration of supports, exact by construction.
+    // 192 instances (32 sizes x 2 ridges x 3 sparsities). The local search
+    // stops at a local optimum on about 5% of such instances (measured:
+    // 25 and 40 of 576 instances from 12 seeds with the former LCG and with
+    // SplitMix64, which draw from the same distributions), so with the
+    // former 48 instances (binomial standard error ≈ 3.3%) the 90% bound
+    // failed on 2 of the 24 seeds tried, this one included; at 192
+    // (≈ 1.7%) it measures the rate rather than the seed. Bound unchanged.
     let d = 16;
     let mut tally = Tally::new("per-row");
-    let mut rng = Lcg::new(2024);
-    for seed in 0..8 {
+    let mut rng = SplitMix64::new(2024);
+    for seed in 0..32 {
         for alpha in [0.0, 0.01] {
             let (x, w, lambda) = instance(&mut rng, 24 + seed, d, 3, alpha);
             let a = gram(&x, lambda);
@@ -372,7 +360,7 @@ fn two_four_matches_exhaustive_enumeration() {
     let all = nm_supports(d, 2, 4);
     assert_eq!(all.len(), 6usize.pow(4));
     let mut tally = Tally::new("2:4");
-    let mut rng = Lcg::new(77);
+    let mut rng = SplitMix64::new(77);
     for seed in 0..10 {
         for alpha in [0.0, 0.01] {
             let (x, w, lambda) = instance(&mut rng, 24 + seed, d, 3, alpha);
@@ -398,7 +386,7 @@ fn per_layer_matches_exhaustive_enumeration() {
     // the d_out·d_in weights), exact by construction.
     let (rows, d) = (3, 5);
     let mut tally = Tally::new("per-layer");
-    let mut rng = Lcg::new(5);
+    let mut rng = SplitMix64::new(5);
     for seed in 0..6 {
         for alpha in [0.0, 0.01] {
             let (x, w, lambda) = instance(&mut rng, 20 + seed, d, rows, alpha);
