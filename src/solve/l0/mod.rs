@@ -44,29 +44,30 @@
 //! on rows refit by Cholesky (`k ≤ min(exact_max_k, chol_limit)`).
 //!
 //! **Algorithm** ([`solve`]):
-//! 1. Starts (`starts.rs`): the support of the OBS sweep ([`crate::solve::obs::sweep`]),
-//!    refit warm-started from its weights; then, only if every row of it is
-//!    refit by Cholesky and `max_seconds` is not spent, the activation-scaled
-//!    magnitude mask (`|w_ij|·sqrt(A_jj)`,
-//!    [`crate::solve::baseline::scaled_scores`]), refit. Per row (per row and
-//!    N:M) or for the whole layer (per-layer scope, whose row budgets differ
-//!    between the starts) the better one is kept; [`SolveInfo::init`] says
-//!    which: `"scaled+refit"`, `"obs+refit"` or `"mixed"`. (Large supports
-//!    skip the scaled start: it costs a second refit of the layer and on a
-//!    1536-wide layer at 50% it won 114 of 1536 rows for no change in the
-//!    final error.)
-//! 2. Sweeps (`sweep.rs`): per-layer budget moves between rows (fixed-others prices;
-//!    prices with the refit when those find nothing), then for every row
-//!    still improving a batch of non-interacting swaps; a row where none
-//!    improves tries the best move priced with the refit (a single swap, a
-//!    pair of swaps, or an N:M group re-choice). Then a refit (exact or
-//!    capped, above) of the rows that changed. A row with no improving move
-//!    is a local optimum and is left alone (per-layer scope wakes rows
-//!    touched by a budget move). Stops when no row improves or the budget
-//!    ([`crate::solve::L0Params::max_sweeps`], `max_seconds`, checked after
-//!    the starts and between sweeps) runs out.
-//! 3. The final refit of the CG rows (`sweep.rs`; always run, also when the budget ran
-//!    out: it is what makes the returned weights refit to `cg_tol`).
+//! 1. Starts (`starts.rs`): the support of the OBS sweep
+//!    ([`crate::solve::obs::sweep`]), refit warm-started from its weights;
+//!    then, only if every row of it is refit by Cholesky and `max_seconds`
+//!    is not spent, the activation-scaled magnitude mask
+//!    (`|w_ij|·sqrt(A_jj)`, [`crate::solve::baseline::scaled_scores`]),
+//!    refit. Per row (per row and N:M) or for the whole layer (per-layer
+//!    scope, whose row budgets differ between the starts) the better one is
+//!    kept; [`SolveInfo::init`] says which: `"scaled+refit"`, `"obs+refit"`
+//!    or `"mixed"`. (Large supports skip the scaled start: it costs a second
+//!    refit of the layer and on a 1536-wide layer at 50% it won 114 of 1536
+//!    rows for no change in the final error.)
+//! 2. Sweeps (`sweep.rs`): per-layer budget moves between rows
+//!    (fixed-others prices; prices with the refit when those find nothing),
+//!    then for every row still improving a batch of non-interacting swaps; a
+//!    row where none improves tries the best move priced with the refit (a
+//!    single swap, a pair of swaps, or an N:M group re-choice). Then a refit
+//!    (exact or capped, above) of the rows that changed. A row with no
+//!    improving move is a local optimum and is left alone (per-layer scope
+//!    wakes rows touched by a budget move). Stops when no row improves or
+//!    the budget ([`crate::solve::L0Params::max_sweeps`], `max_seconds`,
+//!    checked after the starts and between sweeps) runs out.
+//! 3. The final refit of the CG rows (`sweep.rs`; always run, also when the
+//!    budget ran out: it is what makes the returned weights refit to
+//!    `cg_tol`).
 //! 4. Each accepted move has `Δ < −tol` exactly and a refit (CG from a warm
 //!    start included) lowers `f` on its support, so the objective never
 //!    increases; a row that rounding made worse is restored from the copy
@@ -90,6 +91,10 @@
 //! be trusted down to `tol`; only the partner search and the products of
 //! the capped CG refits run in f32, and their results are recomputed in
 //! f64 before any price or objective uses them.
+//!
+//! Tests of the whole solver (against exhaustive enumeration) and the test
+//! instances the step modules share are in `tests.rs`; `bench.rs` holds an
+//! ignored timing run on a 1536-wide layer.
 
 mod exact;
 mod refit;
