@@ -136,7 +136,8 @@ fn main() {
             "\n### layer {d_out} x {d_in} (statistics built in {:.2} s)\n",
             t.elapsed().as_secs_f64()
         );
-        let a = solve::regularised(h.as_ref(), solve::ridge_lambda(h.as_ref(), 0.01));
+        let lambda = solve::ridge_lambda(h.as_ref(), 0.01);
+        let a = solve::regularised(h.as_ref(), lambda);
         let (t_chol, _) = time(reps, || a.llt(Side::Lower).map(|_| ()));
         println!("dense Cholesky of A ({d_in} x {d_in}): {:.4} s\n", t_chol);
         println!("| pattern | method | seconds | x Cholesky | rel. error | sweeps | swaps |");
@@ -148,11 +149,16 @@ fn main() {
                 // beyond the statistics every method shares.
                 let (secs, pruned) = time(reps, || match method {
                     Method::Magnitude => solve::baseline::magnitude(w.as_ref(), pattern),
-                    Method::Obs => {
-                        solve::obs::sweep(w.as_ref(), a.as_ref(), pattern, params.obs_block, par)
-                            .unwrap()
-                    }
-                    _ => solve::l0::solve(w.as_ref(), a.as_ref(), &params, par).unwrap(),
+                    Method::Obs => solve::obs::sweep(
+                        w.as_ref(),
+                        a.as_ref(),
+                        lambda,
+                        pattern,
+                        params.obs_block,
+                        par,
+                    )
+                    .unwrap(),
+                    _ => solve::l0::solve(w.as_ref(), a.as_ref(), lambda, &params, par).unwrap(),
                 });
                 let err =
                     objective::relative_error(w.as_ref(), pruned.weight.as_ref(), h.as_ref(), par);

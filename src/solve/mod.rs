@@ -213,10 +213,15 @@ pub struct SolveInfo {
 #[derive(Clone, Debug, PartialEq)]
 #[non_exhaustive]
 pub enum SolveError {
-    /// The ridge-regularised Gram matrix is not positive definite.
+    /// The ridge-regularised Gram matrix `A = H + λI` (or the block `A_SS`
+    /// of one output row's kept inputs) is not positive definite: a Cholesky
+    /// pivot was not positive.
     NotPositiveDefinite {
-        /// Ridge λ that was used.
+        /// Ridge λ that was added to the diagonal of `H`.
         lambda: f64,
+        /// The output row (row of the weight) whose refit failed, when the
+        /// failure is particular to one row; `None` when `A` itself failed.
+        row: Option<usize>,
     },
     /// The pattern cannot be applied to a layer of this width.
     BadPattern {
@@ -228,10 +233,17 @@ pub enum SolveError {
 impl std::fmt::Display for SolveError {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
-            SolveError::NotPositiveDefinite { lambda } => write!(
-                f,
-                "Gram matrix plus ridge {lambda:.3e} is not positive definite; raise --ridge"
-            ),
+            SolveError::NotPositiveDefinite { lambda, row } => {
+                write!(f, "Gram matrix plus ridge λ={lambda:.3e} is not positive definite")?;
+                if let Some(r) = row {
+                    write!(f, " (output row {r})")?;
+                }
+                write!(
+                    f,
+                    "; raise --ridge (e.g. --ridge 0.1) or check the calibration inputs for \
+                     constant or duplicated columns"
+                )
+            }
             SolveError::BadPattern { reason } => write!(f, "{reason}"),
         }
     }
@@ -343,8 +355,8 @@ pub fn prune_layer(
     let mut pruned = match params.method {
         Method::Magnitude => baseline::magnitude(w, params.pattern),
         Method::Scaled => baseline::scaled(w, h, params.pattern),
-        Method::Obs => obs::sweep(w, a.as_ref(), params.pattern, params.obs_block, par)?,
-        Method::L0 => l0::solve(w, a.as_ref(), params, par)?,
+        Method::Obs => obs::sweep(w, a.as_ref(), lambda, params.pattern, params.obs_block, par)?,
+        Method::L0 => l0::solve(w, a.as_ref(), lambda, params, par)?,
     };
     pruned.info.lambda = lambda;
     if params.method != Method::L0 {
@@ -353,4 +365,59 @@ pub fn prune_layer(
         pruned.info.objective_final = f;
     }
     Ok(pruned)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn indefinite_gram_reports_lambda_and_fix() {
+        // Hand-worked: H = [[2, 3], [3, 2]] has eigenvalues 2 ± 3 = 5, −1.
+        // With α = 0.01, λ = α · mean(diag H) = 0.01 · 2 = 0.02 and A = H + λI
+        // keeps the eigenvalue −0.98, so its Cholesky factorisation fails on
+        // A itself (no particular output row).
+        let h = faer::mat![[2.0, 3.0], [3.0, 2.0]];
+        let w = faer::mat![[1.0, -1.0], [0.5, 2.0]];
+        for method in [Method::Obs, Method::L0] {
+            let params = SolveParams {
+                method,
+                pattern: Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row },
+                ridge_alpha: 0.01,
+                ..SolveParams::default()
+            };
+            let err = prune_layer(w.as_ref(), h.as_ref(), &params, Par::Seq).unwrap_err();
+            assert_eq!(
+                err,
+                SolveError::NotPositiveDefinite { lambda: 0.02, row: None },
+                "{method:?}"
+            );
+            let msg = err.to_string();
+            for want in
+                ["λ=2.000e-2", "not positive definite", "raise --ridge", "duplicated columns"]
+            {
+                assert!(msg.contains(want), "{method:?}: {msg:?} lacks {want:?}");
+            }
+            assert!(!msg.contains("row"), "{msg:?}");
+        }
+        // A negative-definite H (−I) with ridge 0: `ridge_lambda` falls back
+        // to α = 0 when mean(diag H) ≤ 0, so the reported λ is 0, not NaN.
+        let h = faer::mat![[-1.0, 0.0], [0.0, -1.0]];
+        let params =
+            SolveParams { method: Method::Obs, ridge_alpha: 0.0, ..SolveParams::default() };
+        let err = prune_layer(w.as_ref(), h.as_ref(), &params, Par::Seq).unwrap_err();
+        assert_eq!(err, SolveError::NotPositiveDefinite { lambda: 0.0, row: None });
+        assert!(err.to_string().contains("λ=0.000e0"), "{err}");
+    }
+
+    #[test]
+    fn row_failure_message_names_the_row() {
+        let err = SolveError::NotPositiveDefinite { lambda: 1.234e-3, row: Some(17) };
+        assert_eq!(
+            err.to_string(),
+            "Gram matrix plus ridge λ=1.234e-3 is not positive definite (output row 17); raise \
+             --ridge (e.g. --ridge 0.1) or check the calibration inputs for constant or \
+             duplicated columns"
+        );
+    }
 }

@@ -36,13 +36,14 @@ use faer::linalg::matmul::matmul;
 use faer::linalg::solvers::DenseSolveCore;
 use faer::{Accum, Mat, MatRef, Par, Side};
 
-/// Upper-triangular `U` with `A⁻¹ = Uᵀ U`.
+/// Upper-triangular `U` with `A⁻¹ = Uᵀ U`; `lambda` is the ridge in `A`,
+/// reported in the error.
 ///
 /// # Errors
 /// [`SolveError::NotPositiveDefinite`] when `A` (or its inverse) cannot be
 /// factored.
-pub fn inverse_cholesky_upper(a: MatRef<'_, f64>) -> Result<Mat<f64>, SolveError> {
-    let npd = || SolveError::NotPositiveDefinite { lambda: f64::NAN };
+pub fn inverse_cholesky_upper(a: MatRef<'_, f64>, lambda: f64) -> Result<Mat<f64>, SolveError> {
+    let npd = || SolveError::NotPositiveDefinite { lambda, row: None };
     let inv = a.llt(Side::Lower).map_err(|_| npd())?.inverse();
     let l = inv.llt(Side::Lower).map_err(|_| npd())?;
     Ok(l.L().transpose().to_owned())
@@ -54,19 +55,21 @@ fn cumulative_share(total: usize, c: usize, d_in: usize) -> usize {
     ((total as u128 * c as u128 + d_in as u128 / 2) / d_in as u128) as usize
 }
 
-/// Run the sweep. `a` is the ridge-regularised Gram matrix.
+/// Run the sweep. `a` is the ridge-regularised Gram matrix `H + λI` and
+/// `lambda` its ridge λ (reported in errors and in [`SolveInfo::lambda`]).
 ///
 /// # Errors
 /// [`SolveError::NotPositiveDefinite`] when `a` cannot be factored.
 pub fn sweep(
     w: MatRef<'_, f64>,
     a: MatRef<'_, f64>,
+    lambda: f64,
     pattern: Pattern,
     block: usize,
     par: Par,
 ) -> Result<Pruned, SolveError> {
     let (d_out, d_in) = (w.nrows(), w.ncols());
-    let u = inverse_cholesky_upper(a)?;
+    let u = inverse_cholesky_upper(a, lambda)?;
     let mut w = w.to_owned();
     let block = match pattern {
         Pattern::NofM { m, .. } => block.max(m).div_ceil(m) * m,
@@ -127,7 +130,7 @@ pub fn sweep(
             }
         }
     }
-    Ok(Pruned { weight: w, info: SolveInfo::default() })
+    Ok(Pruned { weight: w, info: SolveInfo { lambda, ..SolveInfo::default() } })
 }
 
 /// Mark the lowest-saliency weights of columns `b0..b1` as pruned.
@@ -180,17 +183,14 @@ fn choose_group(w: &Mat<f64>, u: &Mat<f64>, keep: &mut [bool], j0: usize, n: usi
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::rng::SplitMix64;
     use crate::solve::mask::Mask;
     use crate::solve::regularised;
 
     fn gram(n: usize, d: usize, seed: u64) -> Mat<f64> {
-        // Correlated inputs: x_j = z_j + 0.6 z_{j-1}, z from a fixed LCG.
-        let mut s = seed;
-        let mut next = || {
-            s = s.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
-            ((s >> 11) as f64 / (1u64 << 53) as f64) - 0.5
-        };
-        let z = Mat::from_fn(n, d, |_, _| next());
+        // Correlated inputs: x_j = z_j + 0.6 z_{j-1}, z uniform in [-½, ½).
+        let mut rng = SplitMix64::new(seed);
+        let z = Mat::from_fn(n, d, |_, _| rng.uniform() - 0.5);
         let x =
             Mat::from_fn(n, d, |i, j| z[(i, j)] + if j > 0 { 0.6 * z[(i, j - 1)] } else { 0.0 });
         x.transpose() * &x
@@ -235,7 +235,7 @@ mod tests {
             (Pattern::Unstructured { sparsity: 0.6, scope: Scope::Layer }, 3),
             (Pattern::Unstructured { sparsity: 0.3, scope: Scope::Row }, 128),
         ] {
-            let got = sweep(w.as_ref(), a.as_ref(), pattern, block, Par::Seq).unwrap();
+            let got = sweep(w.as_ref(), a.as_ref(), 0.05, pattern, block, Par::Seq).unwrap();
             let mask = Mask::nonzeros(got.weight.as_ref());
             assert!(mask.conforms(pattern), "{pattern:?}");
             let want = reference(&w, &a, &mask);
@@ -251,7 +251,7 @@ mod tests {
         let a = regularised(gram(30, d, 3).as_ref(), 0.01);
         let w = Mat::from_fn(4, d, |r, c| ((r * 3 + c * 7) % 9) as f64 - 4.0);
         let p = Pattern::NofM { n: 2, m: 4 };
-        let got = sweep(w.as_ref(), a.as_ref(), p, 128, Par::Seq).unwrap();
+        let got = sweep(w.as_ref(), a.as_ref(), 0.01, p, 128, Par::Seq).unwrap();
         let mask = Mask::nonzeros(got.weight.as_ref());
         assert!(mask.conforms(p));
         assert_eq!(mask.count(), 4 * 4);
@@ -267,7 +267,7 @@ mod tests {
         let a = faer::mat![[4.0, 1.0, 0.5], [1.0, 3.0, 0.2], [0.5, 0.2, 2.0]];
         let w = faer::mat![[0.1, 2.0, 1.0]];
         let p = Pattern::Unstructured { sparsity: 1.0 / 3.0, scope: Scope::Row };
-        let got = sweep(w.as_ref(), a.as_ref(), p, 128, Par::Seq).unwrap();
+        let got = sweep(w.as_ref(), a.as_ref(), 0.0, p, 128, Par::Seq).unwrap();
         let inv = a.partial_piv_lu().inverse();
         let s = 0.1 / inv[(0, 0)];
         let want = faer::mat![[0.0, 2.0 - s * inv[(1, 0)], 1.0 - s * inv[(2, 0)]]];

@@ -26,14 +26,16 @@
 //!   in f64 with one product so the recursively updated gradient does not
 //!   drift. Capped refits (between sweeps) may run the products in f32.
 //!
+//! [`refit_rows`] sends each row to one of the two by its support size.
+//!
 //! All accumulation is in f64: the Gram matrix, the products and the dot
 //! products that give step lengths and objectives.
 
-use super::{col, Problem, State};
-use crate::solve::SolveError;
+use super::{col, for_each, Problem, State};
+use crate::solve::{SolveError, SolveParams};
 use faer::dyn_stack::{MemBuffer, MemStack, StackReq};
 use faer::linalg::cholesky::llt::factor::{
-    cholesky_in_place, cholesky_in_place_scratch, LltRegularization,
+    cholesky_in_place, cholesky_in_place_scratch, LltError, LltRegularization,
 };
 use faer::linalg::cholesky::llt::solve as llt_solve;
 use faer::linalg::matmul::matmul;
@@ -79,8 +81,8 @@ pub(crate) fn axpy(y: &mut [f64], alpha: f64, x: &[f64]) {
 /// factorisation must not spawn work of its own.
 ///
 /// # Errors
-/// [`SolveError::NotPositiveDefinite`] when a pivot is not positive.
-pub(crate) fn llt_in_place(m: MatMut<'_, f64>) -> Result<(), SolveError> {
+/// [`LltError::NonPositivePivot`] when a pivot is not positive.
+pub(crate) fn llt_in_place(m: MatMut<'_, f64>) -> Result<(), LltError> {
     let n = m.nrows();
     let mut buf = MemBuffer::new(cholesky_in_place_scratch::<f64>(n, Par::Seq, Default::default()));
     cholesky_in_place(
@@ -91,7 +93,6 @@ pub(crate) fn llt_in_place(m: MatMut<'_, f64>) -> Result<(), SolveError> {
         Default::default(),
     )
     .map(|_| ())
-    .map_err(|_| SolveError::NotPositiveDefinite { lambda: f64::NAN })
 }
 
 /// Solve `L Lᵀ X = R` in place with the factor from [`llt_in_place`].
@@ -104,7 +105,7 @@ pub(crate) fn llt_solve_in_place(l: MatRef<'_, f64>, rhs: MatMut<'_, f64>) {
 /// `g` and returns the row objective.
 ///
 /// # Errors
-/// [`SolveError::NotPositiveDefinite`] when `A_SS` cannot be factored.
+/// [`LltError::NonPositivePivot`] when `A_SS` cannot be factored.
 pub(crate) fn cholesky_row(
     a: MatRef<'_, f64>,
     w: &[f64],
@@ -112,7 +113,7 @@ pub(crate) fn cholesky_row(
     w_hat: &mut [f64],
     keep: &[bool],
     g: &mut [f64],
-) -> Result<f64, SolveError> {
+) -> Result<f64, LltError> {
     let s: Vec<usize> = (0..keep.len()).filter(|&c| keep[c]).collect();
     w_hat.fill(0.0);
     if !s.is_empty() {
@@ -126,6 +127,67 @@ pub(crate) fn cholesky_row(
         }
     }
     Ok(gradient_row(a, w, b, w_hat, keep, g))
+}
+
+/// Rows refit by CG (support larger than the Cholesky limit) among `rows`.
+pub(crate) fn cg_rows(keep: &[bool], rows: &[bool], d_in: usize, chol_max: usize) -> Vec<bool> {
+    keep.chunks(d_in)
+        .zip(rows)
+        .map(|(k, &r)| r && k.iter().filter(|&&x| x).count() > chol_max)
+        .collect()
+}
+
+/// Refit the rows flagged in `rows`: those keeping at most
+/// [`crate::solve::L0Params::chol_limit`] weights exactly by per-row
+/// Cholesky, the rest by batched CG warm-started from `ŵ`, capped at
+/// `max_iter` iterations (or stopped at `cg_tol`). Returns CG iterations.
+///
+/// # Errors
+/// [`SolveError::NotPositiveDefinite`] when some `A_SS` cannot be factored;
+/// it names the lowest such row.
+pub(crate) fn refit_rows(
+    prob: &Problem<'_>,
+    state: &mut State,
+    rows: &[bool],
+    params: &SolveParams,
+    max_iter: usize,
+    par: Par,
+) -> Result<usize, SolveError> {
+    let d_in = prob.d_in;
+    let by_cg = cg_rows(&state.keep, rows, d_in, params.l0.chol_limit(d_in));
+    let failed = std::sync::Mutex::new(None::<usize>);
+    let items: Vec<_> = state
+        .w_hat
+        .chunks_mut(d_in)
+        .zip(state.g.chunks_mut(d_in))
+        .zip(state.keep.chunks(d_in))
+        .zip(state.f.iter_mut())
+        .enumerate()
+        .filter(|(r, _)| rows[*r] && !by_cg[*r])
+        .collect();
+    for_each(items, par, |(r, (((w_hat, g), keep), f))| {
+        let rg = r * d_in..(r + 1) * d_in;
+        match cholesky_row(prob.a, &prob.w[rg.clone()], &prob.b[rg], w_hat, keep, g) {
+            Ok(v) => *f = v,
+            Err(_) => {
+                // The lowest failing row, whatever order the threads ran in.
+                let mut first = failed.lock().unwrap();
+                *first = Some(first.map_or(r, |q| q.min(r)));
+            }
+        }
+    });
+    if let Some(row) = failed.into_inner().unwrap() {
+        return Err(SolveError::NotPositiveDefinite { lambda: prob.lambda, row: Some(row) });
+    }
+    if by_cg.contains(&true) {
+        // The capped refits run their products in f32; the final one in f64
+        // (an f32 pass to 1e-4 first saved nothing: CG restarted in f64
+        // needed as many iterations from there to 1e-6).
+        let single = max_iter < params.l0.cg_max_iter;
+        Ok(pcg(prob, state, &by_cg, params.l0.cg_tol, max_iter, single, par))
+    } else {
+        Ok(0)
+    }
 }
 
 /// Row-major view of a `rows x cols` slice.
@@ -314,7 +376,7 @@ pub(crate) fn pcg(
 
 #[cfg(test)]
 mod tests {
-    use super::super::tests::{instance, Lcg};
+    use super::super::tests::instance;
     use super::super::{Problem, State};
     use super::*;
     use faer::linalg::solvers::SolveLstsq;
@@ -346,8 +408,27 @@ mod tests {
     }
 
     #[test]
+    fn refit_names_the_lowest_failing_row() {
+        // Hand-worked: A_{01} = [[1, 2], [2, 1]] has eigenvalues 1 ± 2 = 3, −1,
+        // so rows 1 and 2, keeping inputs {0, 1}, cannot be refit; row 0,
+        // keeping {0, 2} (A_SS = I), can. The error names row 1 and the λ
+        // the problem was built with, under any thread count.
+        let a = faer::mat![[1.0, 2.0, 0.0], [2.0, 1.0, 0.0], [0.0, 0.0, 1.0]];
+        let w = Mat::from_fn(3, 3, |r, c| (r + c) as f64 - 1.5);
+        let lambda = 0.25;
+        let prob = Problem::new(w.as_ref(), a.as_ref(), lambda, Par::Seq);
+        let keep = [true, false, true, true, true, false, true, true, false].to_vec();
+        for par in [Par::Seq, Par::rayon(2)] {
+            let mut st = State::from_support(&prob, keep.clone(), None, par);
+            let params = crate::solve::SolveParams::default();
+            let err = refit_rows(&prob, &mut st, &[true; 3], &params, 3, par).unwrap_err();
+            assert_eq!(err, SolveError::NotPositiveDefinite { lambda, row: Some(1) });
+        }
+    }
+
+    #[test]
     fn refit_matches_qr_least_squares() {
-        let mut rng = Lcg::new(11);
+        let mut rng = crate::rng::SplitMix64::new(11);
         for trial in 0..12 {
             let d = 6 + trial % 7;
             let (x, w, lambda) =
@@ -359,7 +440,7 @@ mod tests {
                 }
                 a
             };
-            let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+            let prob = Problem::new(w.as_ref(), a.as_ref(), lambda, Par::Seq);
             let keep: Vec<bool> = (0..3 * d).map(|_| rng.uniform() < 0.5).collect();
             // Both refit paths: per-row Cholesky and batched PCG.
             let mut chol = State::from_support(&prob, keep.clone(), None, Par::Seq);

@@ -392,7 +392,7 @@ pub(crate) fn budget_moves(
 
 #[cfg(test)]
 mod tests {
-    use super::super::tests::{instance, Lcg};
+    use super::super::tests::instance;
     use super::super::{refit, Problem, State};
     use super::*;
     use faer::Par;
@@ -401,13 +401,13 @@ mod tests {
     fn swap_delta_matches_direct_objective() {
         // Δ(i, j) and t* against f recomputed from scratch (a fresh
         // gradient) after applying the move.
-        let mut rng = Lcg::new(8);
+        let mut rng = crate::rng::SplitMix64::new(8);
         let (x, w, lambda) = instance(&mut rng, 50, 10, 2, 0.01);
         let mut a = x.transpose() * &x;
         for j in 0..10 {
             a[(j, j)] += lambda;
         }
-        let prob = Problem::new(w.as_ref(), a.as_ref(), Par::Seq);
+        let prob = Problem::new(w.as_ref(), a.as_ref(), lambda, Par::Seq);
         let keep: Vec<bool> = (0..20).map(|c| c % 10 < 5).collect();
         let st = State::from_support(&prob, keep, None, Par::Seq);
         for r in 0..2 {
