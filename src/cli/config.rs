@@ -112,7 +112,7 @@ pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
         (Some(p), None) => {
             Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--pattern {e}")))?
         }
-        (None, Some(s)) => Pattern::parse_sparsity(&s.to_string(), a.job.solver.scope)
+        (None, Some(s)) => Pattern::unstructured(s, a.job.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsity {e}")))?,
         _ => return Err(Error::usage("give exactly one of --sparsity and --pattern")),
     };
@@ -142,7 +142,7 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
         Ok(())
     };
     for &s in &sparsities {
-        let p = Pattern::parse_sparsity(&s.to_string(), a.job.solver.scope)
+        let p = Pattern::unstructured(s, a.job.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsities: {e}")))?;
         push(p, "--sparsities")?;
     }

@@ -93,10 +93,19 @@ impl Pattern {
     /// # Errors
     /// A message quoting `s`.
     pub fn parse_sparsity(s: &str, scope: Scope) -> Result<Pattern, String> {
-        match s.trim().parse::<f64>() {
-            Ok(x) if (0.0..1.0).contains(&x) => Ok(Pattern::Unstructured { sparsity: x, scope }),
-            Ok(x) => Err(format!("{x} is outside [0, 1)")),
-            Err(_) => Err(format!("'{s}' is not a number")),
+        let x = s.trim().parse::<f64>().map_err(|_| format!("'{s}' is not a number"))?;
+        Pattern::unstructured(x, scope)
+    }
+
+    /// An unstructured pattern with `sparsity` in `[0, 1)`.
+    ///
+    /// # Errors
+    /// A message quoting `sparsity` when it is outside `[0, 1)`.
+    pub fn unstructured(sparsity: f64, scope: Scope) -> Result<Pattern, String> {
+        if (0.0..1.0).contains(&sparsity) {
+            Ok(Pattern::Unstructured { sparsity, scope })
+        } else {
+            Err(format!("{sparsity} is outside [0, 1)"))
         }
     }
 }
