@@ -10,6 +10,36 @@ use crate::compare::data::{target_display, Run};
 use crate::compare::svg::{decade_label, esc, exact, marker, sci, LinScale, LogScale};
 use std::fmt::Write as _;
 
+/// The plot area of a chart, in SVG units, inside its `width × height` box.
+#[derive(Clone, Copy)]
+struct Frame {
+    left: f64,
+    right: f64,
+    top: f64,
+    bottom: f64,
+    width: f64,
+    height: f64,
+}
+
+impl Frame {
+    /// The plot area's border and the axis titles (y on a log scale).
+    fn draw(&self, h: &mut String, xlabel: &str, ylabel: &str) {
+        let Frame { left, right, top, bottom, width, height } = *self;
+        let _ = write!(
+            h,
+            "<rect x=\"{left}\" y=\"{top}\" width=\"{:.1}\" height=\"{:.1}\" fill=\"none\" stroke=\"#9aa3ad\"/>\
+             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"600\">{xlabel}</text>\
+             <text transform=\"translate(18 {:.1}) rotate(-90)\" text-anchor=\"middle\" font-weight=\"600\">{} (log scale)</text>",
+            width - left - right,
+            height - top - bottom,
+            (left + width - right) / 2.0,
+            height - 12.0,
+            (top + height - bottom) / 2.0,
+            esc(ylabel)
+        );
+    }
+}
+
 /// Write the section, or nothing when there is no mean error to draw.
 /// Horizontal log-scale gridlines and labels on the left of a plot.
 fn y_log_axis(out: &mut String, ys: &LogScale, x0: f64, x1: f64) {
@@ -96,18 +126,8 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
             );
             tick += 10.0;
         }
-        let _ = write!(
-            h,
-            "<rect x=\"{left}\" y=\"{top}\" width=\"{:.1}\" height=\"{:.1}\" fill=\"none\" stroke=\"#9aa3ad\"/>\
-             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"600\">sparsity (%)</text>\
-             <text transform=\"translate(18 {:.1}) rotate(-90)\" text-anchor=\"middle\" font-weight=\"600\">{} (log scale)</text>",
-            width - left - right,
-            height - top - bottom,
-            (left + width - right) / 2.0,
-            height - 12.0,
-            (top + height - bottom) / 2.0,
-            esc(&ylabel)
-        );
+        let plot = Frame { left, right, top, bottom, width, height };
+        plot.draw(h, "sparsity (%)", &ylabel);
         for s in &v.series {
             let pts: Vec<(f64, f64, &Run)> = unstructured
                 .iter()
@@ -194,18 +214,8 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
                 marker(h, s.shape, x, ys.px(y), 5.5, s.colour, s.filled, &attrs, Some(&title));
             }
         }
-        let _ = write!(
-            h,
-            "<rect x=\"{left}\" y=\"{top}\" width=\"{:.1}\" height=\"{:.1}\" fill=\"none\" stroke=\"#9aa3ad\"/>\
-             <text x=\"{:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"600\">pattern (N kept of every M)</text>\
-             <text transform=\"translate(18 {:.1}) rotate(-90)\" text-anchor=\"middle\" font-weight=\"600\">{} (log scale)</text>",
-            width - left - right,
-            height - top - bottom,
-            (left + width - right) / 2.0,
-            height - 12.0,
-            (top + height - bottom) / 2.0,
-            esc(&ylabel)
-        );
+        let plot = Frame { left, right, top, bottom, width, height };
+        plot.draw(h, "pattern (N kept of every M)", &ylabel);
         h.push_str("</svg></figure>\n");
     }
     h.push_str("</div>\n");
