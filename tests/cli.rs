@@ -5,36 +5,6 @@
 mod common;
 use common::*;
 
-/// A small model: two prunable linear layers plus an embedding, a norm, a
-/// bias and a head that the default rule leaves alone.
-fn small_model(dir: &Scratch) -> (std::path::PathBuf, std::path::PathBuf) {
-    let model = dir.path("model.safetensors");
-    write_st(
-        &model,
-        &[
-            f32s("embed.weight", &[10, 8], &values(80, 1)),
-            f32s("enc.0.weight", &[6, 8], &values(48, 2)),
-            f32s("enc.0.bias", &[6], &values(6, 3)),
-            f32s("enc.1.weight", &[4, 6], &values(24, 4)),
-            f32s("norm.weight", &[6], &[1.0; 6]),
-            f32s("head.weight", &[2, 4], &values(8, 5)),
-        ],
-    );
-    let acts = dir.path("acts.safetensors");
-    write_st(
-        &acts,
-        &[
-            f32s("enc.0.weight", &[40, 8], &values(320, 6)),
-            f32s("enc.1.weight", &[40, 6], &values(240, 7)),
-        ],
-    );
-    (model, acts)
-}
-
-fn s(p: &std::path::Path) -> &str {
-    p.to_str().unwrap()
-}
-
 #[test]
 fn inspect_lists_tensors_and_prunable_flags() {
     let dir = Scratch::new("inspect");

@@ -8,32 +8,17 @@
 mod common;
 
 use common::*;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
-fn s(p: &Path) -> &str {
-    p.to_str().unwrap()
-}
-
-/// A model with a prunable layer `enc.0.weight` [6, 8] and `enc.1.weight`
-/// [4, 6] (6 inputs: 2:4 does not fit), and matching activations.
-fn small_model(dir: &Scratch) -> (PathBuf, PathBuf) {
-    let model = dir.path("model.safetensors");
-    write_st(
-        &model,
-        &[
-            f32s("enc.0.weight", &[6, 8], &values(48, 2)),
-            f32s("enc.1.weight", &[4, 6], &values(24, 4)),
-        ],
-    );
-    let acts = dir.path("acts.safetensors");
-    write_st(
-        &acts,
-        &[
-            f32s("enc.0.weight", &[40, 8], &values(320, 6)),
-            f32s("enc.1.weight", &[40, 6], &values(240, 7)),
-        ],
-    );
-    (model, acts)
+/// Prune the small model with a report; returns the report's path.
+fn report_of(dir: &Scratch, m: &str, a: &str) -> PathBuf {
+    let r = dir.path("r.json");
+    let p = dir.path("p.safetensors");
+    let args =
+        ["prune", m, "--activations", a, "--sparsity", "0.5", "-o", s(&p), "--report", s(&r), "-q"];
+    let ok = lopper(&args);
+    assert!(ok.status.success(), "{}", stderr(&ok));
+    r
 }
 
 /// Run `args`; check the exit code, one line of stderr holding every
@@ -106,21 +91,7 @@ fn overwriting_an_input_is_a_usage_error_in_every_command() {
     );
     expect(&dir, &["pack", &ms, "-o", &ms], 2, &needles, &[]);
     // A report read by `lopper report` is an input too.
-    let r = dir.path("r.json");
-    let ok = lopper(&[
-        "prune",
-        &ms,
-        "--activations",
-        &a,
-        "--sparsity",
-        "0.5",
-        "-o",
-        s(&dir.path("p.safetensors")),
-        "--report",
-        s(&r),
-        "-q",
-    ]);
-    assert!(ok.status.success(), "{}", stderr(&ok));
+    let r = report_of(&dir, &ms, &a);
     expect(&dir, &["report", s(&r), "-o", s(&r)], 2, &["refusing to overwrite", "r.json"], &[]);
 }
 
@@ -242,21 +213,7 @@ fn an_output_failure_exits_1_in_every_command() {
     let (m, a) = small_model(&dir);
     let (m, a) = (s(&m).to_string(), s(&a).to_string());
     let nodir = dir.path("no-such-folder");
-    let r = dir.path("r.json");
-    let ok = lopper(&[
-        "prune",
-        &m,
-        "--activations",
-        &a,
-        "--sparsity",
-        "0.5",
-        "-o",
-        s(&dir.path("p.safetensors")),
-        "--report",
-        s(&r),
-        "-q",
-    ]);
-    assert!(ok.status.success(), "{}", stderr(&ok));
+    let r = report_of(&dir, &m, &a);
     let out = nodir.join("out.safetensors");
     expect(
         &dir,
