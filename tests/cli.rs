@@ -543,3 +543,38 @@ fn trace_records_a_non_increasing_objective_per_layer() {
         );
     }
 }
+
+#[test]
+fn threads_beyond_the_cpus_are_capped_with_a_note() {
+    // More worker threads than cores only slow a compute-bound run down
+    // (common practice); lopper uses at most the CPUs it may run on.
+    let dir = Scratch::new("threads");
+    let (model, acts) = small_model(&dir);
+    let (out, report) = (dir.path("out.safetensors"), dir.path("r.json"));
+    let cpus = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
+    let o = lopper(&[
+        "prune",
+        s(&model),
+        "--activations",
+        s(&acts),
+        "--sparsity",
+        "0.5",
+        "--threads",
+        "100000",
+        "-o",
+        s(&out),
+        "--report",
+        s(&report),
+        "-q",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let note = format!("lopper: note: --threads 100000 is more than the {cpus} CPUs here");
+    assert!(stderr(&o).starts_with(&note), "{}", stderr(&o));
+    let r: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+    assert_eq!(r["settings"]["threads"], cpus);
+    let o =
+        lopper(&["speed", s(&out), "--threads", "100000", "--batch", "1", "--min-time", "0.01"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(stderr(&o).contains("--threads 100000"), "{}", stderr(&o));
+}

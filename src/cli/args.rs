@@ -149,7 +149,8 @@ pub struct SolverArgs {
 #[derive(Debug, Args)]
 #[command(next_help_heading = "Run")]
 pub struct RunArgs {
-    /// Worker threads (0 = all cores).
+    /// Worker threads (0 = all cores; more than the cores is capped, with a
+    /// note).
     #[arg(long, value_name = "N", default_value_t = 0)]
     pub threads: usize,
     /// Print nothing but errors (no progress bar, no table).
@@ -263,7 +264,8 @@ pub struct EvalArgs {
     /// Print JSON instead of a sentence.
     #[arg(long)]
     pub json: bool,
-    /// Worker threads (0 = all cores).
+    /// Worker threads (0 = all cores; more than the cores is capped, with a
+    /// note).
     #[arg(long, value_name = "N", default_value_t = 0)]
     pub threads: usize,
 }

@@ -11,12 +11,27 @@ use crate::select::Selection;
 use crate::solve::{L0Params, Pattern};
 use crate::source::{Calibration, TextSource};
 
-/// Resolve `--threads 0` to the machine's cores.
+/// Resolve `--threads`: 0 means every CPU; more than the CPUs this process
+/// may use is capped at that count, with a note on stderr (more threads
+/// than cores only make a compute-bound run slower).
 pub fn resolve_threads(n: usize) -> usize {
-    if n > 0 {
-        n
-    } else {
-        std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
+    let cpus = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
+    let (threads, note) = cap_threads(n, cpus);
+    if let Some(note) = note {
+        eprintln!("lopper: note: {note}");
+    }
+    threads
+}
+
+/// `--threads n` on a machine with `cpus` CPUs: the count to use, and a
+/// note when it was capped.
+fn cap_threads(n: usize, cpus: usize) -> (usize, Option<String>) {
+    match n {
+        0 => (cpus, None),
+        n if n > cpus => {
+            (cpus, Some(format!("--threads {n} is more than the {cpus} CPUs here; using {cpus}")))
+        }
+        n => (n, None),
     }
 }
 
@@ -186,6 +201,16 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn threads_are_capped_at_the_cpus() {
+        assert_eq!(cap_threads(0, 8), (8, None));
+        assert_eq!(cap_threads(3, 8), (3, None));
+        assert_eq!(cap_threads(8, 8), (8, None));
+        let (t, note) = cap_threads(10_000, 2);
+        assert_eq!(t, 2);
+        assert_eq!(note.unwrap(), "--threads 10000 is more than the 2 CPUs here; using 2");
+    }
 
     #[test]
     fn focus_takes_either_kind_of_key() {
