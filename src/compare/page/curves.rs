@@ -10,6 +10,17 @@ use crate::compare::data::{target_display, Run};
 use crate::compare::svg::{decade_label, esc, exact, marker, sci, LinScale, LogScale};
 use std::fmt::Write as _;
 
+/// The data attributes of one plotted point: its source, run, field and
+/// exact value, so a test can check the page against the JSON.
+fn point_attrs(s: &Series, r: &Run, field: &str, y: f64) -> String {
+    format!(
+        "class=\"pt\" data-source=\"{}\" data-run=\"{}\" data-field=\"{field}\" data-value=\"{}\"",
+        s.source,
+        esc(&r.id),
+        exact(Some(y))
+    )
+}
+
 /// The plot area of a chart, in SVG units, inside its `width × height` box.
 #[derive(Clone, Copy)]
 struct Frame {
@@ -148,13 +159,7 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
                 );
             }
             for (x, y, r) in pts {
-                let attrs = format!(
-                    "class=\"pt\" data-source=\"{}\" data-run=\"{}\" data-field=\"{}\" data-value=\"{}\"",
-                    s.source,
-                    esc(&r.id),
-                    metric.field(),
-                    exact(Some(y))
-                );
+                let attrs = point_attrs(s, r, metric.field(), y);
                 let title =
                     format!("{} at {}: {}", s.label, target_display(&r.target), sci(Some(y)));
                 marker(
@@ -203,13 +208,7 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
                 let Some(y) = metric.mean(r) else { continue };
                 let step = (band * 0.6 / n).min(16.0);
                 let x = cx + (k as f64 - (n - 1.0) / 2.0) * step;
-                let attrs = format!(
-                    "class=\"pt\" data-source=\"{}\" data-run=\"{}\" data-field=\"{}\" data-value=\"{}\"",
-                    s.source,
-                    esc(&r.id),
-                    metric.field(),
-                    exact(Some(y))
-                );
+                let attrs = point_attrs(s, r, metric.field(), y);
                 let title = format!("{} at {}: {}", s.label, t.key, sci(Some(y)));
                 marker(h, s.shape, x, ys.px(y), 5.5, s.colour, s.filled, &attrs, Some(&title));
             }
