@@ -11,6 +11,7 @@ use super::{
     attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, Batch, Family, Group, Kind,
     Linear, Linears, Network, Result, Tap, Weights,
 };
+use super::units::{self, UnitKind, Units};
 use candle_core::Tensor;
 
 /// How token states become one sentence embedding.
@@ -145,6 +146,15 @@ impl Network for Bert {
             g("mlp input", &[&k.up]),
             g("mlp output", &[&k.down]),
         ]
+    }
+
+    fn units(&self, b: usize) -> Vec<Units> {
+        let k = &self.blocks[b];
+        let (up, down) = (self.lin(&k.up), self.lin(&k.down));
+        let mut slices = units::producer(up, 1);
+        slices.push(units::consumer(down, 1));
+        let count = up.shape().0;
+        vec![Units { kind: UnitKind::Neuron, count, consumer: k.down.clone(), width: 1, group: 3, slices }]
     }
 
     fn embed(&self, batch: &Batch) -> Result<Tensor> {

@@ -27,6 +27,7 @@ use super::{
     attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
     Batch, Family, Group, Kind, Linear, Linears, Network, Result, Tap, Weights,
 };
+use super::units::{self, UnitKind, Units};
 use candle_core::{Tensor, D};
 
 /// The GELU variant of `activation_function`.
@@ -205,6 +206,22 @@ impl Network for Gpt2 {
             g("mlp input", &k.c_fc),
             g("mlp output", &k.mlp_proj),
         ]
+    }
+
+    fn units(&self, b: usize) -> Vec<Units> {
+        let k = &self.blocks[b];
+        let (fc, proj) = (self.linears.at(&k.c_fc), self.linears.at(&k.mlp_proj));
+        let mut slices = units::producer(fc, 1);
+        slices.push(units::consumer(proj, 1));
+        let count = fc.shape().0;
+        vec![Units {
+            kind: UnitKind::Neuron,
+            count,
+            consumer: k.mlp_proj.clone(),
+            width: 1,
+            group: 3,
+            slices,
+        }]
     }
 
     fn embed(&self, batch: &Batch) -> Result<Tensor> {

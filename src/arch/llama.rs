@@ -35,6 +35,7 @@ use super::{
     attention, merge_heads, rms_norm, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
     Batch, Family, Group, Kind, Linear, Linears, Network, Result, Tap, Weights,
 };
+use super::units::{self, Slice, UnitKind, Units};
 use candle_core::{Device, Tensor, D};
 
 /// Frequency scaling of the rotary embedding (`rope_scaling` in the config).
@@ -347,6 +348,40 @@ impl Network for Llama {
             g("attention output", &[&k.o]),
             g("mlp input", &[&k.gate, &k.up]),
             g("mlp output", &[&k.down]),
+        ]
+    }
+
+    fn units(&self, b: usize) -> Vec<Units> {
+        let k = &self.blocks[b];
+        let c = &self.cfg;
+        let mut neurons: Vec<Slice> =
+            [&k.gate, &k.up].iter().flat_map(|n| units::producer(self.lin(n), 1)).collect();
+        neurons.push(units::consumer(self.lin(&k.down), 1));
+        // A head unit: one key/value head and the `rep` consecutive query
+        // heads that share it.
+        let rep = c.heads / c.kv_heads;
+        let mut heads = units::producer(self.lin(&k.qkv[0]), rep * c.head_dim);
+        for n in &k.qkv[1..] {
+            heads.extend(units::producer(self.lin(n), c.head_dim));
+        }
+        heads.push(units::consumer(self.lin(&k.o), rep * c.head_dim));
+        vec![
+            Units {
+                kind: UnitKind::Head,
+                count: c.kv_heads,
+                consumer: k.o.clone(),
+                width: rep * c.head_dim,
+                group: 1,
+                slices: heads,
+            },
+            Units {
+                kind: UnitKind::Neuron,
+                count: c.intermediate,
+                consumer: k.down.clone(),
+                width: 1,
+                group: 3,
+                slices: neurons,
+            },
         ]
     }
 

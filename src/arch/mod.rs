@@ -3,7 +3,9 @@
 //! This module owns: reading `config.json` into an [`ArchConfig`], building a
 //! [`Network`] from a model's safetensors tensors, and running it block by
 //! block with a *tap* that sees the input of every group of linear layers.
-//! It knows nothing about pruning; the calibration driver
+//! Block structure ([`units`]) says which tensor slices make up an FFN
+//! neuron or an attention head. It knows nothing about pruning; the
+//! calibration driver
 //! (`crate::source::text`) calls [`Network::embed`], [`Network::block`] and
 //! [`Network::set_weight`].
 //!
@@ -27,6 +29,7 @@
 pub mod bert;
 pub mod gpt2;
 pub mod llama;
+pub mod units;
 
 use crate::io::Model;
 use candle_core::{DType, Device, Tensor, D};
@@ -313,6 +316,10 @@ pub trait Network: Send + Sync {
 
     /// A linear layer by weight tensor name.
     fn linear(&self, name: &str) -> Option<&Linear>;
+
+    /// The removable units of block `b` ([`units::Units`]): FFN neurons,
+    /// and attention heads where the family's config can express fewer.
+    fn units(&self, b: usize) -> Vec<units::Units>;
 
     /// Replace a linear layer's weight (`[d_out, d_in]`, row-major f32).
     ///

@@ -41,6 +41,12 @@ impl Gram {
         Gram { h: Mat::zeros(d, d), rows: 0 }
     }
 
+    /// The Gram matrix of the inputs `idx` only, `H[idx, idx]`, over the
+    /// same rows.
+    pub fn restricted(&self, idx: &[usize]) -> Self {
+        Gram { h: Mat::from_fn(idx.len(), idx.len(), |a, b| self.h[(idx[a], idx[b])]), rows: self.rows }
+    }
+
     /// Add rows given row-major in `x` (`x.len() = rows · d`): `H += XᵀX`.
     ///
     /// # Panics
@@ -107,6 +113,11 @@ impl LayerGrams {
         LayerGrams { calib: Gram::new(d), holdout: Gram::new(d) }
     }
 
+    /// The statistics of the inputs `idx` only: `H[idx, idx]` of both parts.
+    pub fn restricted(&self, idx: &[usize]) -> Self {
+        LayerGrams { calib: self.calib.restricted(idx), holdout: self.holdout.restricted(idx) }
+    }
+
     /// Add a chunk of rows (row-major) whose first row has global index
     /// `first`, routing each row by [`is_holdout`].
     pub fn add_chunk(&mut self, x: &[f64], first: usize, fraction: f64, par: Par) {
@@ -162,6 +173,15 @@ mod tests {
         let mut split = LayerGrams::new(d);
         split.add_chunk(&x, 0, 0.2, Par::Seq);
         assert_eq!(split.holdout.rows(), 4);
+        // H[idx, idx] by definition.
+        let idx = [3, 0];
+        let r = split.calib.restricted(&idx);
+        assert_eq!(r.rows(), split.calib.rows());
+        for (a, &i) in idx.iter().enumerate() {
+            for (b, &j) in idx.iter().enumerate() {
+                assert_eq!(r.matrix()[(a, b)], split.calib.matrix()[(i, j)]);
+            }
+        }
         let mut total = split.calib.clone();
         total.merge(&split.holdout);
         assert!((total.matrix() - &want).norm_max() <= 1e-12 * want.norm_max());

@@ -177,7 +177,8 @@ pub struct JobArgs {
 
 /// `lopper prune`.
 #[derive(Debug, Args)]
-#[command(group(ArgGroup::new("target").required(true).args(["sparsity", "pattern"])))]
+#[command(group(ArgGroup::new("target").required(true).multiple(true)
+    .args(["sparsity", "pattern", "remove_neurons", "remove_heads"])))]
 pub struct PruneArgs {
     /// A .safetensors file, a *.safetensors.index.json, or a model directory.
     pub model: PathBuf,
@@ -191,6 +192,23 @@ pub struct PruneArgs {
     /// Solver.
     #[arg(long, value_enum, default_value = "l0")]
     pub method: Method,
+    /// Structured: remove this many FFN neurons from every block, a
+    /// fraction (0.25) or a count (384), and write a smaller model (MODEL
+    /// must be a directory; with --text). Combines with --sparsity or
+    /// --pattern, which then apply to what remains.
+    #[arg(long, value_name = "F|N", help_heading = "Structured")]
+    pub remove_neurons: Option<String>,
+    /// Structured: remove this many attention heads from every block, as
+    /// whole key/value heads with the query heads that share them
+    /// (Llama-family models; BERT and GPT-2 configs cannot express fewer
+    /// heads).
+    #[arg(long, value_name = "F|N", help_heading = "Structured")]
+    pub remove_heads: Option<String>,
+    /// Structured with --method magnitude or scaled: refit the layer that
+    /// reads the units on the kept ones, instead of only deleting the others
+    /// (obs and l0 always refit).
+    #[arg(long, help_heading = "Structured")]
+    pub refit: bool,
     /// Output: a .safetensors file for a single-file model, a directory for
     /// a sharded model or a model directory.
     #[arg(short = 'o', long = "output", value_name = "OUT")]

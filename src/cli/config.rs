@@ -4,7 +4,7 @@
 
 use super::args::{CompareArgs, JobArgs, PruneArgs, SelectionArgs};
 use crate::compare::{data, CompareConfig};
-use crate::driver::{JobConfig, PruneConfig, Target};
+use crate::driver::{Amount, CutSpec, JobConfig, PruneConfig, Target};
 use crate::error::{Error, Result};
 use crate::evaluate::EvalOptions;
 use crate::select::Selection;
@@ -123,19 +123,43 @@ fn job_config(model: &std::path::Path, job: &JobArgs) -> Result<JobConfig> {
 
 /// Validate `lopper prune`.
 pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
+    let amount = |flag: &str, v: &Option<String>| -> Result<Option<Amount>> {
+        v.as_deref()
+            .map(|t| t.parse::<Amount>().map_err(|e| Error::usage(format!("{flag} {e}"))))
+            .transpose()
+    };
+    let neurons = amount("--remove-neurons", &a.remove_neurons)?;
+    let heads = amount("--remove-heads", &a.remove_heads)?;
+    let cut = (neurons.is_some() || heads.is_some()).then_some(CutSpec {
+        neurons,
+        heads,
+        refit: a.refit,
+    });
+    if a.refit && cut.is_none() {
+        return Err(Error::usage("--refit applies to --remove-neurons / --remove-heads"));
+    }
     let pattern = match (&a.pattern, a.sparsity) {
         (Some(p), None) => {
             Pattern::parse_n_of_m(p).map_err(|e| Error::usage(format!("--pattern {e}")))?
         }
         (None, Some(s)) => Pattern::unstructured(s, a.job.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsity {e}")))?,
+        // A cut alone: nothing is pruned in what remains.
+        (None, None) if cut.is_some() => Pattern::unstructured(0.0, a.job.solver.scope)
+            .expect("0 is a valid sparsity"),
         _ => return Err(Error::usage("give exactly one of --sparsity and --pattern")),
     };
+    if cut.is_some() && !a.model.is_dir() {
+        return Err(Error::usage(format!(
+            "{}: structured pruning writes a new config.json; give MODEL as the model directory",
+            a.model.display()
+        )));
+    }
     let mut job = job_config(&a.model, &a.job)?;
     job.trace = a.trace.is_some();
     Ok(PruneConfig {
         job,
-        target: Target { method: a.method, pattern },
+        target: Target { method: a.method, pattern, cut },
         output: a.output.clone(),
         report: a.report.clone(),
         trace: a.trace.clone(),

@@ -134,13 +134,12 @@ fn eval(a: &args::EvalArgs) -> Result<()> {
     config::check_counts(a.samples, a.seq_len)?;
     let dense = crate::io::Model::open(&a.dense)?;
     let pruned = crate::io::Model::open(&a.pruned)?;
-    let replace = crate::evaluate::pruned_weights(&dense, &pruned)?;
     let opts = crate::evaluate::EvalOptions {
         text: a.text.clone(),
         samples: a.samples,
         seq_len: a.seq_len,
     };
-    let summary = crate::evaluate::evaluate(&dense, &replace, &opts)?;
+    let summary = crate::evaluate::evaluate_models(&dense, &pruned, &opts)?;
     if a.json {
         println!("{}", serde_json::to_string_pretty(&summary).expect("serialises"));
     } else {

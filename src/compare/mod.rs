@@ -86,7 +86,7 @@ impl CompareConfig {
         let mut runs = Vec::with_capacity(self.methods.len() * self.targets.len());
         for &method in &self.methods {
             for &pattern in &self.targets {
-                runs.push(Target { method, pattern });
+                runs.push(Target::new(method, pattern));
             }
         }
         runs

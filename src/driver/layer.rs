@@ -8,7 +8,7 @@ use crate::io;
 use crate::report::LayerReport;
 use crate::solve::{self, objective, L0Params, Method, SolveParams};
 use crate::source::Planned;
-use faer::{MatRef, Par};
+use faer::{Mat, MatRef, Par};
 use std::fmt;
 use std::str::FromStr;
 use std::time::Instant;
@@ -160,17 +160,7 @@ pub fn solve_layer(
             values.push(what[(r, c)]);
         }
     }
-    let dtype = layer.dtype;
-    let kept = stored_nonzeros(&values, dtype).map_err(|e| {
-        Error::new(
-            ErrorKind::Solve,
-            format!(
-                "layer '{name}': pruned weights cannot be stored as {dtype:?}: {e} (raise --ridge \
-                 to damp the refit, or leave the layer dense with --skip)"
-            ),
-        )
-        .with_layer(name)
-    })?;
+    let kept = stored(layer, &values)?;
     let total = d_out * d_in;
     let si = pruned.info;
     let report = LayerReport {
@@ -193,6 +183,142 @@ pub fn solve_layer(
         init: si.init.map(str::to_string),
     };
     Ok(Solved { values, report, trace: si.trace })
+}
+
+/// How a structured cut of the layer's block narrows its problem.
+#[derive(Clone, Debug)]
+pub enum Narrow<'a> {
+    /// A producer: only these output rows remain (the others are deleted
+    /// with their units).
+    Rows(Vec<usize>),
+    /// The consumer: only these input columns remain, starting from its
+    /// refit on them (`start`, `[d_out, d_in]` at full width).
+    Cols {
+        /// Kept input columns, ascending.
+        cols: Vec<usize>,
+        /// The consumer refit on `cols`.
+        start: MatRef<'a, f64>,
+        /// Ridge α the cut used.
+        alpha: f64,
+    },
+}
+
+/// Whether `target` prunes nothing beyond a structured cut.
+pub(crate) fn cut_only(target: Target) -> bool {
+    target.cut.is_some()
+        && matches!(target.pattern, solve::Pattern::Unstructured { sparsity, .. } if sparsity == 0.0)
+}
+
+/// [`solve_layer`] on what a structured cut leaves of the layer. Returns
+/// `None` for a layer the run leaves as it is (a cut-only run and a layer
+/// the cut does not touch, or only deletes rows of).
+///
+/// The result has the layer's full shape: a producer's deleted rows keep
+/// their dense values and a consumer's deleted columns are zero, so the
+/// block computes what the smaller model will. The report row describes
+/// the smaller layer (its shape and counts); a consumer's errors are
+/// measured against its dense weight on all columns.
+///
+/// # Errors
+/// As [`solve_layer`].
+pub fn solve_narrowed(
+    cfg: &JobConfig,
+    target: Target,
+    layer: &Planned,
+    w: MatRef<'_, f64>,
+    grams: &LayerGrams,
+    narrow: Option<&Narrow<'_>>,
+    par: Par,
+) -> Result<Option<Solved>> {
+    let only_cut = cut_only(target);
+    let (d_out, d_in) = (w.nrows(), w.ncols());
+    let sub = |shape: [usize; 2]| Planned { shape, ..layer.clone() };
+    match narrow {
+        None if only_cut => Ok(None),
+        None => solve_layer(cfg, target, layer, w, grams, par).map(Some),
+        Some(Narrow::Rows(_)) if only_cut => Ok(None),
+        Some(Narrow::Rows(rows)) => {
+            let ws = Mat::from_fn(rows.len(), d_in, |r, c| w[(rows[r], c)]);
+            let mut s = solve_layer(cfg, target, &sub([rows.len(), d_in]), ws.as_ref(), grams, par)?;
+            let mut full: Vec<f64> = (0..d_out * d_in).map(|k| w[(k / d_in, k % d_in)]).collect();
+            for (i, &r) in rows.iter().enumerate() {
+                full[r * d_in..(r + 1) * d_in].copy_from_slice(&s.values[i * d_in..(i + 1) * d_in]);
+            }
+            s.values = full;
+            Ok(Some(s))
+        }
+        Some(Narrow::Cols { cols, start, alpha }) => {
+            let t0 = Instant::now();
+            let k = cols.len();
+            let ws = Mat::from_fn(d_out, k, |r, c| start[(r, cols[c])]);
+            let gs = grams.restricted(cols);
+            let mut s = if only_cut {
+                as_is(&sub([d_out, k]), ws.as_ref(), &gs, *alpha)?
+            } else {
+                solve_layer(cfg, target, &sub([d_out, k]), ws.as_ref(), &gs, par)?
+            };
+            let mut full = vec![0.0; d_out * d_in];
+            for r in 0..d_out {
+                for (c, &col) in cols.iter().enumerate() {
+                    full[r * d_in + col] = s.values[r * k + c];
+                }
+            }
+            let what = MatRef::from_row_major_slice(&full, d_out, d_in);
+            let h = grams.calib.matrix();
+            s.report.rel_error = objective::relative_error(w, what, h, par);
+            s.report.rel_error_holdout = (grams.holdout.rows() > 0)
+                .then(|| objective::relative_error(w, what, grams.holdout.matrix(), par));
+            s.report.seconds = t0.elapsed().as_secs_f64();
+            s.values = full;
+            Ok(Some(s))
+        }
+    }
+}
+
+/// The report of a layer kept as `w` (a consumer whose cut is all the run
+/// does to it).
+fn as_is(layer: &Planned, w: MatRef<'_, f64>, grams: &LayerGrams, alpha: f64) -> Result<Solved> {
+    let (d_out, d_in) = (w.nrows(), w.ncols());
+    let values: Vec<f64> = (0..d_out * d_in).map(|k| w[(k / d_in, k % d_in)]).collect();
+    let kept = stored(layer, &values)?;
+    let h = grams.calib.matrix();
+    let lambda = solve::ridge_lambda(h, alpha);
+    let report = LayerReport {
+        name: layer.name.clone(),
+        shape: [d_out, d_in],
+        kept,
+        total: d_out * d_in,
+        sparsity: 1.0 - kept as f64 / (d_out * d_in).max(1) as f64,
+        rel_error: 0.0,
+        rel_error_holdout: None,
+        seconds: 0.0,
+        calibration_rows: grams.calib.rows(),
+        holdout_rows: grams.holdout.rows(),
+        ridge_alpha: alpha,
+        ridge_lambda: lambda,
+        objective_initial: 0.0,
+        objective_final: 0.0,
+        sweeps: 0,
+        swaps: 0,
+        init: Some("cut+refit".to_string()),
+    };
+    Ok(Solved { values, report, trace: Vec::new() })
+}
+
+/// Nonzeros of `values` as stored in `layer`'s dtype, or the error that
+/// says they cannot be stored.
+fn stored(layer: &Planned, values: &[f64]) -> Result<usize> {
+    let (name, dtype) = (layer.name.as_str(), layer.dtype);
+    stored_nonzeros(values, dtype).map_err(|e| {
+        Error::new(
+            ErrorKind::Solve,
+            format!(
+                "layer '{name}': pruned weights cannot be stored as {dtype:?}: {e} (raise --ridge \
+                 to damp the refit, or leave the layer dense with --skip)"
+            ),
+        )
+        .with_layer(name)
+    })
 }
 
 #[cfg(test)]

@@ -14,19 +14,23 @@
 //! by `threads`; the driver itself is sequential, so reports come out in
 //! layer order.
 
+pub mod cut;
 mod layer;
 mod prune;
+pub mod shrink;
 
-pub use layer::{solve_layer, Ridge, Solved, AUTO_RIDGE_GRID, DEFAULT_RIDGE};
+pub use cut::{Amount, CutSpec, UnitCut};
+pub use layer::{solve_layer, solve_narrowed, Narrow, Ridge, Solved, AUTO_RIDGE_GRID, DEFAULT_RIDGE};
 pub(crate) use prune::model_meta;
 pub use prune::{prune, PruneConfig};
 
-use crate::error::Result;
+use crate::arch::units::{head_limit, UnitKind};
+use crate::error::{Error, Result};
 use crate::evaluate::EvalOptions;
 use crate::io::Model;
 use crate::report::PhaseTimes;
 use crate::select::Selection;
-use crate::solve::{L0Params, Method, Pattern};
+use crate::solve::{self, L0Params, Method, Pattern};
 use crate::source::{self, Calibration, LayerSource, PlanParams, Planned};
 use faer::Par;
 use std::path::PathBuf;
@@ -72,8 +76,17 @@ impl JobConfig {
 pub struct Target {
     /// Solver.
     pub method: Method,
-    /// Sparsity pattern.
+    /// Sparsity pattern (of what a structured cut leaves).
     pub pattern: Pattern,
+    /// Structured pruning: units removed from every block first.
+    pub cut: Option<CutSpec>,
+}
+
+impl Target {
+    /// Unstructured or N:M pruning only.
+    pub fn new(method: Method, pattern: Pattern) -> Self {
+        Target { method, pattern, cut: None }
+    }
 }
 
 /// Progress events for a front end.
@@ -117,6 +130,15 @@ pub trait Sink {
     /// # Errors
     /// Whatever finishing the run fails with; the driver stops.
     fn run_done(&mut self, run: usize, timing: Option<PhaseTimes>) -> Result<()>;
+
+    /// Run `run` removed units of a block (before that block's layers are
+    /// solved).
+    ///
+    /// # Errors
+    /// Whatever keeping the result fails with; the driver stops.
+    fn cut(&mut self, _run: usize, _cut: &UnitCut) -> Result<()> {
+        Ok(())
+    }
 
     /// Asked between solves: stop now, leaving later solves undone.
     fn stop_requested(&self) -> bool {
@@ -172,6 +194,7 @@ pub fn drive<'m>(
     progress: &dyn Fn(Progress<'_>),
 ) -> Result<Finish> {
     let par = cfg.par();
+    check_cuts(targets, first.as_ref())?;
     let n_layers: usize = first.blocks().iter().map(Vec::len).sum();
     progress(Progress::Start(n_layers * targets.len()));
     let all: Vec<usize> = (0..targets.len()).collect();
@@ -193,6 +216,15 @@ pub fn drive<'m>(
             progress(Progress::Statistics(&src.block_label(b)));
             let stats = src.statistics(b, par)?;
             sink.statistics(&layers, &stats);
+            let t = Instant::now();
+            let mut cuts: Vec<Vec<UnitCut>> = vec![Vec::new(); targets.len()];
+            for &r in &cohort {
+                cuts[r] = cut_block(cfg, targets[r], src.as_ref(), b, &layers, &stats, par)?;
+                for c in &cuts[r] {
+                    sink.cut(r, c)?;
+                }
+            }
+            solve_secs += t.elapsed().as_secs_f64();
             for layer in &layers {
                 let w = src.weight(layer)?;
                 for &r in &cohort {
@@ -202,12 +234,23 @@ pub fn drive<'m>(
                     progress(Progress::Solve { done, layer: &layer.name, run: r });
                     let t = Instant::now();
                     let grams = &stats.grams[&layer.group];
-                    let solved = solve_layer(cfg, targets[r], layer, w.as_ref(), grams, par)?;
-                    if src.follows_pruned() {
-                        src.hand_back(layer, &solved.values)?;
-                    }
+                    let narrow = narrow_for(&cuts[r], &layer.name);
+                    let solved = solve_narrowed(
+                        cfg,
+                        targets[r],
+                        layer,
+                        w.as_ref(),
+                        grams,
+                        narrow.as_ref(),
+                        par,
+                    )?;
                     solve_secs += t.elapsed().as_secs_f64();
-                    sink.solved(r, layer, solved)?;
+                    if let Some(solved) = solved {
+                        if src.follows_pruned() {
+                            src.hand_back(layer, &solved.values)?;
+                        }
+                        sink.solved(r, layer, solved)?;
+                    }
                     done += 1;
                     progress(Progress::Done(done));
                 }
@@ -220,4 +263,102 @@ pub fn drive<'m>(
         }
     }
     Ok(Finish::Complete)
+}
+
+/// Refuse structured cuts the source or the family cannot do, before any
+/// work: units the source does not know, heads the family's config cannot
+/// express, a cut that leaves nothing, a consumer left out of the
+/// selection, a pattern that does not fit the consumer's kept width.
+fn check_cuts(targets: &[Target], src: &dyn LayerSource) -> Result<()> {
+    for t in targets {
+        let Some(spec) = t.cut else { continue };
+        for b in 0..src.blocks().len() {
+            let units = src.units(b);
+            for kind in [UnitKind::Neuron, UnitKind::Head] {
+                let Some(amount) = spec.amount(kind) else { continue };
+                let flag = CutSpec::flag(kind);
+                let Some(u) = units.iter().find(|u| u.kind == kind) else {
+                    let why = match (units.is_empty(), src.family().and_then(head_limit)) {
+                        (true, _) => "it needs text calibration (--text), which knows the model's \
+                                      blocks"
+                            .to_string(),
+                        (false, Some(limit)) => limit.to_string(),
+                        (false, None) => "the model has no such units".to_string(),
+                    };
+                    return Err(Error::usage(format!("{flag}: {why}")));
+                };
+                let removed = amount.removed(u.count);
+                if removed >= u.count {
+                    return Err(Error::usage(format!(
+                        "{flag} {amount} removes {removed} of the {} {} of block {b}; keep at \
+                         least one",
+                        u.count,
+                        kind.plural()
+                    )));
+                }
+                if !src.blocks()[b].iter().any(|l| l.name == u.consumer) {
+                    return Err(Error::usage(format!(
+                        "{flag} needs '{}' selected (it reads the {} and is refit); check --only \
+                         / --skip",
+                        u.consumer,
+                        kind.plural()
+                    )));
+                }
+                let kept_cols = (u.count - removed) * u.width;
+                solve::check_pattern(t.pattern, kept_cols).map_err(|e| {
+                    Error::usage(format!(
+                        "{flag} {amount} leaves '{}' {kept_cols} inputs wide: {e}",
+                        u.consumer
+                    ))
+                })?;
+            }
+        }
+    }
+    Ok(())
+}
+
+/// The units run `target` removes from block `b`.
+fn cut_block(
+    cfg: &JobConfig,
+    target: Target,
+    src: &dyn LayerSource,
+    b: usize,
+    layers: &[Planned],
+    stats: &source::BlockStats,
+    par: Par,
+) -> Result<Vec<UnitCut>> {
+    let Some(spec) = target.cut else { return Ok(Vec::new()) };
+    let params = cut::CutParams {
+        ridge: cfg.ridge,
+        method: target.method,
+        refit: spec.refit,
+        max_rounds: cfg.l0.max_sweeps,
+        max_seconds: cfg.l0.max_seconds,
+    };
+    let mut out = Vec::new();
+    for u in src.units(b) {
+        let Some(amount) = spec.amount(u.kind) else { continue };
+        let consumer = layers.iter().find(|l| l.name == u.consumer).expect("checked before");
+        let w = src.weight(consumer)?;
+        let grams = &stats.grams[&u.group];
+        out.push(cut::cut_units(b, &u, amount.removed(u.count), w.as_ref(), grams, &params, par)?);
+    }
+    Ok(out)
+}
+
+/// How the cuts of a block narrow layer `name`.
+fn narrow_for<'a>(cuts: &'a [UnitCut], name: &str) -> Option<Narrow<'a>> {
+    for c in cuts {
+        if c.units.consumer == name {
+            return Some(Narrow::Cols {
+                cols: c.kept_columns(),
+                start: c.weight.as_ref(),
+                alpha: c.report.ridge_alpha,
+            });
+        }
+        if let Some(s) = c.units.slices.iter().find(|s| s.tensor == name) {
+            return Some(Narrow::Rows(c.kept_entries(s.per_unit)));
+        }
+    }
+    None
 }

@@ -1,11 +1,14 @@
 //! `lopper prune`: one run of the driver, then the pruned model, the trace
 //! and the report, written only when every layer succeeded.
 
-use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target};
+use super::shrink::shrink;
+use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target, UnitCut};
 use crate::error::Result;
 use crate::io::{self, Model};
 use crate::outputs::{check_distinct, input_files};
-use crate::report::{LayerReport, PhaseTimes, Report, Settings, Summary, VALIDATION_NOTICE};
+use crate::report::{
+    LayerReport, PhaseTimes, Report, Settings, StructureReport, Summary, VALIDATION_NOTICE,
+};
 use crate::source::{Calibration, Planned};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -34,6 +37,7 @@ struct Collect {
     layers: Vec<LayerReport>,
     traces: Vec<(String, Vec<f64>)>,
     timing: Option<PhaseTimes>,
+    cuts: Vec<UnitCut>,
 }
 
 impl Sink for Collect {
@@ -41,6 +45,11 @@ impl Sink for Collect {
         self.replaced.insert(layer.name.clone(), layer.to_storage(s.values));
         self.traces.push((layer.name.clone(), s.trace));
         self.layers.push(s.report);
+        Ok(())
+    }
+
+    fn cut(&mut self, _: usize, cut: &UnitCut) -> Result<()> {
+        self.cuts.push(cut.clone());
         Ok(())
     }
 
@@ -124,10 +133,24 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         threads: job.threads,
     };
     let meta = model_meta(job, cfg.target, sink.layers.len());
-    let mut outputs: Vec<String> = io::write_model(&model, &cfg.output, &sink.replaced, &meta)?
-        .iter()
-        .map(|p| p.display().to_string())
-        .collect();
+    let (written, structure) = if sink.cuts.is_empty() {
+        (io::write_model(&model, &cfg.output, &sink.replaced, &meta)?, None)
+    } else {
+        let small = shrink(&model, &sink.replaced, &sink.cuts)?;
+        let mut config = serde_json::to_vec_pretty(&small.config).expect("JSON serialises");
+        config.push(b'\n');
+        let files = BTreeMap::from([("config.json".to_string(), config)]);
+        let edits = io::Edits { replaced: &small.values, reshaped: &small.shapes, files: &files };
+        let written = io::write_model_edited(&model, &cfg.output, &edits, &meta)?;
+        let report = StructureReport {
+            units: sink.cuts.iter().map(|c| c.report.clone()).collect(),
+            params_before: small.params_before,
+            params_after: small.params_after,
+            config: small.changes,
+        };
+        (written, Some(report))
+    };
+    let mut outputs: Vec<String> = written.iter().map(|p| p.display().to_string()).collect();
     if let Some(path) = &cfg.trace {
         let mut text = String::new();
         for (name, t) in &sink.traces {
@@ -151,6 +174,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         outputs,
         timing: sink.timing,
         eval,
+        structure,
         notice: VALIDATION_NOTICE.to_string(),
     };
     if let Some(path) = &cfg.report {

@@ -115,6 +115,43 @@ pub fn evaluate(
     opts: &EvalOptions,
 ) -> Result<EvalSummary, Error> {
     let (a, b) = networks(dense, replace)?;
+    compare(a.as_ref(), b.as_ref(), dense, opts)
+}
+
+/// Compare `dense` with the model `pruned`: the same tensors with other
+/// values, or a structurally smaller model (fewer neurons or heads, its own
+/// `config.json`), which is then run by its own network.
+pub fn evaluate_models(
+    dense: &Model,
+    pruned: &Model,
+    opts: &EvalOptions,
+) -> Result<EvalSummary, Error> {
+    let smaller = dense
+        .tensors()
+        .iter()
+        .any(|t| pruned.get(&t.name).is_some_and(|p| p.shape != t.shape));
+    if !smaller {
+        return evaluate(dense, &pruned_weights(dense, pruned)?, opts);
+    }
+    let (a, b) = (arch::load(dense)?, arch::load(pruned)?);
+    if a.family() != b.family() || a.num_blocks() != b.num_blocks() {
+        return Err(Error::input(format!(
+            "{}: not a pruned copy of {} (another family or block count)",
+            pruned.layout().root().display(),
+            dense.layout().root().display()
+        )));
+    }
+    compare(a.as_ref(), b.as_ref(), dense, opts)
+}
+
+/// Run the dense network `a` and the pruned `b` on `opts.text`, tokenized
+/// with the tokenizer of `dense`.
+fn compare(
+    a: &dyn Network,
+    b: &dyn Network,
+    dense: &Model,
+    opts: &EvalOptions,
+) -> Result<EvalSummary, Error> {
     let dir = arch::model_dir(dense);
     let tok = load_tokenizer(&dir)?;
     let text = read_text(&opts.text)?;
@@ -139,7 +176,7 @@ pub fn evaluate(
                 }
                 seqs.push(ids);
             }
-            encoder_summary(a.as_ref(), b.as_ref(), &seqs, shown)
+            encoder_summary(a, b, &seqs, shown)
         }
         Kind::Decoder => {
             let framing = Framing::for_network(a.family(), &tok, &dir)?;
@@ -162,7 +199,7 @@ pub fn evaluate(
                     ids.len()
                 )));
             }
-            decoder_summary(a.as_ref(), b.as_ref(), &wins, framing.prefix.len(), shown)
+            decoder_summary(a, b, &wins, framing.prefix.len(), shown)
         }
     }
 }

@@ -41,7 +41,7 @@ pub use file::{TensorFile, TensorInfo};
 pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
-pub use write::{canonical_target, write_atomic, write_model};
+pub use write::{canonical_target, write_atomic, write_model, write_model_edited, Edits};
 
 /// The accessors and the one-line `Display` (`path: tensor 'name': detail`)
 /// that [`LoadError`] and [`WriteError`] share: both name a file, maybe a

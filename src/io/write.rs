@@ -87,6 +87,8 @@ enum Job<'a> {
     Tensors { header: Vec<u8>, parts: Vec<&'a [u8]> },
     /// A copy of an input file (index, config, tokenizer, …).
     Copy(&'a Path),
+    /// New contents (an edited config or index).
+    Bytes(Vec<u8>),
 }
 
 /// Write a pruned copy of `model` to `out`, mirroring its layout, and return
@@ -120,7 +122,48 @@ pub fn write_model(
     replaced: &BTreeMap<String, Vec<f64>>,
     metadata: &BTreeMap<String, String>,
 ) -> Result<Vec<PathBuf>, WriteError> {
-    let encoded = encode_replaced(model, out, replaced)?;
+    write_model_edited(model, out, &Edits { replaced, ..Edits::default() }, metadata)
+}
+
+/// Changes to a model beyond new values of the same shape.
+#[derive(Clone, Copy, Debug)]
+pub struct Edits<'a> {
+    /// Row-major values by tensor name (in the new shape when
+    /// `reshaped` has one).
+    pub replaced: &'a BTreeMap<String, Vec<f64>>,
+    /// New shapes (a structurally smaller model); every reshaped tensor
+    /// must be in `replaced`.
+    pub reshaped: &'a BTreeMap<String, Vec<usize>>,
+    /// New contents of extra files of a model directory, by file name
+    /// (e.g. `config.json`).
+    pub files: &'a BTreeMap<String, Vec<u8>>,
+}
+
+/// No replacement, no new shape, no new file.
+static EMPTY_VALUES: BTreeMap<String, Vec<f64>> = BTreeMap::new();
+static EMPTY_SHAPES: BTreeMap<String, Vec<usize>> = BTreeMap::new();
+static EMPTY_FILES: BTreeMap<String, Vec<u8>> = BTreeMap::new();
+
+impl Default for Edits<'_> {
+    fn default() -> Self {
+        Edits { replaced: &EMPTY_VALUES, reshaped: &EMPTY_SHAPES, files: &EMPTY_FILES }
+    }
+}
+
+/// [`write_model`] with [`Edits`]: tensors may change shape (the index's
+/// `total_size` is then recomputed) and extra files may get new contents.
+///
+/// # Errors
+/// As [`write_model`]; a reshaped tensor without values is
+/// [`K::ShapeMismatch`], and a new file for a model that is not a directory
+/// is [`K::BadOutput`].
+pub fn write_model_edited(
+    model: &Model,
+    out: &Path,
+    edits: &Edits<'_>,
+    metadata: &BTreeMap<String, String>,
+) -> Result<Vec<PathBuf>, WriteError> {
+    let encoded = encode_replaced(model, out, edits.replaced, edits.reshaped)?;
 
     // Plan: (target path, job) for every output file.
     let (to_dir, inner, extra) = match model.layout() {
@@ -128,6 +171,13 @@ pub fn write_model(
         Layout::Sharded { .. } => (true, model.layout(), &[][..]),
         Layout::Directory { inner, extra_files, .. } => (true, &**inner, extra_files.as_slice()),
     };
+    if !edits.files.is_empty() && !matches!(model.layout(), Layout::Directory { .. }) {
+        return Err(WriteError::new(
+            out,
+            K::BadOutput,
+            "new config files can only be written for a model directory; give MODEL as a directory",
+        ));
+    }
     let target = |p: &Path| {
         if to_dir {
             out.join(p.file_name().unwrap_or_default())
@@ -136,14 +186,33 @@ pub fn write_model(
         }
     };
     let mut plan: Vec<(PathBuf, Job<'_>)> = Vec::new();
+    let mut data_bytes = 0usize;
     for f in model.files() {
-        plan.push((target(f.path()), tensor_job(f, &encoded, metadata)));
+        let job = tensor_job(f, &encoded, edits.reshaped, metadata);
+        if let Job::Tensors { parts, .. } = &job {
+            data_bytes += parts.iter().map(|p| p.len()).sum::<usize>();
+        }
+        plan.push((target(f.path()), job));
     }
     if let Layout::Sharded { index, .. } = inner {
-        plan.push((target(index), Job::Copy(index)));
+        let job = if edits.reshaped.is_empty() {
+            Job::Copy(index)
+        } else {
+            Job::Bytes(index_with_total(index, data_bytes)?)
+        };
+        plan.push((target(index), job));
     }
     for p in extra {
-        plan.push((target(p), Job::Copy(p)));
+        let name = p.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+        match edits.files.get(&name) {
+            Some(bytes) => plan.push((target(p), Job::Bytes(bytes.clone()))),
+            None => plan.push((target(p), Job::Copy(p))),
+        }
+    }
+    for name in edits.files.keys() {
+        if !extra.iter().any(|p| p.file_name().is_some_and(|n| n.to_string_lossy() == *name)) {
+            plan.push((out.join(name), Job::Bytes(edits.files[name].clone())));
+        }
     }
 
     check_outputs(model, out, to_dir, plan.iter().map(|(p, _)| p.as_path()))?;
@@ -164,10 +233,30 @@ pub fn write_model(
                     .map_err(|e| WriteError::load(&path, super::LoadError::io(src, "open", e)))?;
                 write_atomic(&path, |w| std::io::copy(&mut input, w).map(|_| ()))?;
             }
+            Job::Bytes(bytes) => write_atomic(&path, |w| w.write_all(&bytes))?,
         }
         written.push(path);
     }
     Ok(written)
+}
+
+/// The shard index at `index` with `metadata.total_size` set to `total`
+/// (the tensors' data bytes); the weight map is unchanged.
+fn index_with_total(index: &Path, total: usize) -> Result<Vec<u8>, WriteError> {
+    let text = std::fs::read_to_string(index)
+        .map_err(|e| WriteError::load(index, super::LoadError::io(index, "read", e)))?;
+    let mut json: serde_json::Value = serde_json::from_str(&text).map_err(|e| {
+        WriteError::new(index, K::BadOutput, format!("the shard index is not JSON ({e})"))
+    })?;
+    if let Some(obj) = json.as_object_mut() {
+        let meta = obj.entry("metadata").or_insert_with(|| serde_json::json!({}));
+        if let Some(m) = meta.as_object_mut() {
+            m.insert("total_size".to_string(), serde_json::Value::from(total));
+        }
+    }
+    let mut bytes = serde_json::to_vec_pretty(&json).expect("JSON values serialise");
+    bytes.push(b'\n');
+    Ok(bytes)
 }
 
 /// Validate and encode every replacement to its tensor's dtype.
@@ -175,21 +264,26 @@ fn encode_replaced<'a>(
     model: &Model,
     out: &Path,
     replaced: &'a BTreeMap<String, Vec<f64>>,
+    reshaped: &BTreeMap<String, Vec<usize>>,
 ) -> Result<BTreeMap<&'a str, Vec<u8>>, WriteError> {
+    if let Some(name) = reshaped.keys().find(|n| !replaced.contains_key(*n)) {
+        return Err(WriteError::new(out, K::ShapeMismatch, "a new shape was given without values")
+            .tensor(name));
+    }
     let mut encoded = BTreeMap::new();
     for (name, values) in replaced {
         let err = |kind, d: String| WriteError::new(out, kind, d).tensor(name);
         let info = model
             .get(name)
             .ok_or_else(|| err(K::NoSuchTensor, "no such tensor in the input model".into()))?;
-        if values.len() != info.params() {
+        let shape = reshaped.get(name).unwrap_or(&info.shape);
+        let count: usize = shape.iter().product();
+        if values.len() != count {
             return Err(err(
                 K::ShapeMismatch,
                 format!(
-                    "{} values were given for shape {:?} ({} elements)",
+                    "{} values were given for shape {shape:?} ({count} elements)",
                     values.len(),
-                    info.shape,
-                    info.params()
                 ),
             ));
         }
@@ -221,6 +315,7 @@ fn encode_replaced<'a>(
 fn tensor_job<'a>(
     f: &'a TensorFile,
     encoded: &'a BTreeMap<&str, Vec<u8>>,
+    reshaped: &'a BTreeMap<String, Vec<usize>>,
     metadata: &BTreeMap<String, String>,
 ) -> Job<'a> {
     let mut meta: BTreeMap<&str, &str> = BTreeMap::new();
@@ -239,7 +334,8 @@ fn tensor_job<'a>(
             None => f.bytes(name).expect("names come from the file"),
         };
         // Cannot overflow: the sum is the input's validated data length.
-        tensors.push((name, info.dtype.to_string(), &info.shape[..], offset, offset + bytes.len()));
+        let shape = reshaped.get(name).unwrap_or(&info.shape);
+        tensors.push((name, info.dtype.to_string(), &shape[..], offset, offset + bytes.len()));
         offset += bytes.len();
         parts.push(bytes);
     }

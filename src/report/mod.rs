@@ -116,8 +116,63 @@ pub struct Report {
     pub timing: Option<PhaseTimes>,
     /// End-to-end comparison with the dense model, when asked for.
     pub eval: Option<EvalSummary>,
+    /// Structured pruning: the units removed per block (`null` without).
+    #[serde(default)]
+    pub structure: Option<StructureReport>,
     /// [`VALIDATION_NOTICE`].
     pub notice: String,
+}
+
+/// One block's cut of one kind of unit (FFN neurons or attention heads).
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct UnitsReport {
+    /// Block index.
+    pub block: usize,
+    /// `neurons` or `heads` (a head unit is one key/value head with the
+    /// query heads that share it).
+    pub kind: String,
+    /// The layer that reads the units, refit on the kept ones.
+    pub consumer: String,
+    /// Units before.
+    pub before: usize,
+    /// Units after.
+    pub after: usize,
+    /// Indices of the removed units.
+    pub removed: Vec<usize>,
+    /// Method that chose them.
+    pub method: String,
+    /// The consumer was refit on the kept units.
+    pub refit: bool,
+    /// The consumer's `‖XWᵀ − XŴᵀ‖²/‖XWᵀ‖²` on calibration rows after the cut
+    /// (before any unstructured pruning of what remains).
+    pub rel_error: f64,
+    /// The same on held-out rows.
+    pub rel_error_holdout: Option<f64>,
+    /// Ridge α used.
+    pub ridge_alpha: f64,
+    /// Objective after the start (greedy removal for `l0`).
+    pub objective_start: f64,
+    /// Objective at the end.
+    pub objective: f64,
+    /// Swap rounds.
+    pub rounds: usize,
+    /// Swaps accepted.
+    pub swaps: usize,
+    /// Seconds for the structured solve.
+    pub seconds: f64,
+}
+
+/// What structured pruning removed.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct StructureReport {
+    /// One entry per block and kind of unit.
+    pub units: Vec<UnitsReport>,
+    /// Parameters of the whole model before.
+    pub params_before: usize,
+    /// Parameters of the written model.
+    pub params_after: usize,
+    /// The `config.json` keys that changed, with their new values.
+    pub config: serde_json::Value,
 }
 
 /// Seconds spent in each phase of a text-calibrated run.
@@ -187,6 +242,42 @@ impl EvalSummary {
             }
             _ => format!("end to end on {}: no inputs", self.text),
         }
+    }
+}
+
+impl StructureReport {
+    /// The removed units as a fixed-width text table, one line per block
+    /// and kind, then the parameter totals.
+    pub fn render_table(&self) -> String {
+        let mut out = String::new();
+        let head = format!(
+            "{:>5}  {:<7}  {:>13}  {:>11}  {:>11}  {:>6}  {:>5}  {:>7}",
+            "block", "units", "kept / before", "err calib", "err held", "alpha", "swaps", "sec"
+        );
+        let rule = "-".repeat(head.len());
+        let _ = writeln!(out, "{head}\n{rule}");
+        for u in &self.units {
+            let _ = writeln!(
+                out,
+                "{:>5}  {:<7}  {:>13}  {:>11}  {:>11}  {:>6}  {:>5}  {:>7.2}",
+                u.block,
+                u.kind,
+                format!("{}/{}", u.after, u.before),
+                fmt_err(Some(u.rel_error)),
+                fmt_err(u.rel_error_holdout),
+                u.ridge_alpha,
+                u.swaps,
+                u.seconds
+            );
+        }
+        let _ = writeln!(out, "{rule}");
+        let pct = 100.0 * (1.0 - self.params_after as f64 / self.params_before.max(1) as f64);
+        let _ = writeln!(
+            out,
+            "parameters {} -> {} ({pct:.1}% fewer); config.json: {}",
+            self.params_before, self.params_after, self.config
+        );
+        out
     }
 }
 
@@ -281,6 +372,9 @@ impl Report {
             fmt_err(m.mean_rel_error_holdout),
             m.seconds
         );
+        if let Some(st) = &self.structure {
+            out.push_str(&st.render_table());
+        }
         if let Some(t) = &self.timing {
             let _ = writeln!(
                 out,
@@ -341,6 +435,7 @@ mod tests {
     fn json_has_contract_fields() {
         let layers = vec![layer("a", 10, 0.1, Some(0.2))];
         let r = Report {
+            structure: None,
             settings: Settings {
                 method: "obs".into(),
                 sparsity: Some(0.5),

@@ -31,6 +31,7 @@ pub mod l0;
 pub mod mask;
 mod names;
 pub mod objective;
+pub mod group;
 pub mod obs;
 
 use faer::{Mat, MatRef, Par};

@@ -17,6 +17,8 @@
 pub mod activations;
 pub mod text;
 
+use crate::arch::units::Units;
+use crate::arch::Family;
 use crate::calib::LayerGrams;
 use crate::error::{Error, Result};
 use crate::io::{Dtype, Model};
@@ -146,6 +148,17 @@ pub trait LayerSource {
 
     /// Time spent so far, by phase (text sources).
     fn timing(&self) -> Option<PhaseTimes>;
+
+    /// The architecture family, when the source runs the model.
+    fn family(&self) -> Option<Family> {
+        None
+    }
+
+    /// The removable units of block `b` (FFN neurons, attention heads), when
+    /// the source knows the model's block structure.
+    fn units(&self, _b: usize) -> Vec<Units> {
+        Vec::new()
+    }
 }
 
 /// Open the source `calibration` describes for `model`, planned for

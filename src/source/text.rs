@@ -321,4 +321,12 @@ impl LayerSource for TextCalibration {
     fn timing(&self) -> Option<PhaseTimes> {
         Some(self.timing)
     }
+
+    fn family(&self) -> Option<arch::Family> {
+        Some(self.net.family())
+    }
+
+    fn units(&self, b: usize) -> Vec<arch::units::Units> {
+        self.net.units(b)
+    }
 }
