@@ -774,3 +774,200 @@ fn bert_matches_candle_bert_on_minilm() {
     check("bert: hidden states with a pruned layer", &pruned, &reference(&map, ids));
     check_taps(&*net, ids);
 }
+
+// ----------------------------------------------------- smaller models ----
+//
+// Structured pruning writes a model with fewer FFN neurons (and, for the
+// Llama family, fewer heads) and a config.json that says so. Each written
+// model must load in candle-transformers' own code for its family and give
+// the outputs lopper's forward gives for the same smaller model.
+
+/// A word-level tokenizer over `w0 … w{v−1}` in the model folder, and two
+/// texts of those words from seeded generators (calibration and held-out).
+fn add_text(dir: &Scratch, vocab: usize) -> (std::path::PathBuf, std::path::PathBuf) {
+    let words: serde_json::Map<String, Value> =
+        (0..vocab).map(|i| (format!("w{i}"), json!(i))).collect();
+    let tok = json!({
+        "version": "1.0", "truncation": null, "padding": null, "added_tokens": [],
+        "normalizer": null, "pre_tokenizer": {"type": "Whitespace"},
+        "post_processor": null, "decoder": null,
+        "model": {"type": "WordLevel", "vocab": words, "unk_token": "w0"}
+    });
+    std::fs::write(dir.path("tokenizer.json"), tok.to_string()).unwrap();
+    let text = |n: usize, seed: u64| {
+        let mut rng = SplitMix64::new(seed);
+        let ws: Vec<String> = (0..n).map(|_| format!("w{}", rng.below(vocab as u64))).collect();
+        ws.join(" ")
+    };
+    let (calib, held) = (dir.path("calib.txt"), dir.path("held.txt"));
+    std::fs::write(&calib, text(3000, 41)).unwrap();
+    std::fs::write(&held, text(600, 42)).unwrap();
+    (calib, held)
+}
+
+/// Run `lopper prune MODEL --text calib ARGS -o OUT` and return OUT and the
+/// report.
+fn prune_to(model: &std::path::Path, calib: &std::path::Path, args: &[&str]) -> (Scratch, Value) {
+    let out = Scratch::new("smaller-out");
+    let target = out.path("model");
+    let report = out.path("report.json");
+    let mut all = vec!["prune", s(model), "--text", s(calib), "--samples", "24", "--seq-len"];
+    all.extend_from_slice(&["16", "-o", s(&target), "--report", s(&report), "--quiet"]);
+    all.extend_from_slice(args);
+    let o = lopper(&all);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let r = serde_json::from_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+    (out, r)
+}
+
+fn read_json(p: &std::path::Path) -> Value {
+    serde_json::from_str(&std::fs::read_to_string(p).unwrap()).unwrap()
+}
+
+#[test]
+fn llama_without_heads_and_neurons_loads_in_candle_mistral() {
+    let spec = LlamaSpec::tiny("llama");
+    let dir = spec.write("smaller-llama", 700);
+    let (calib, _) = add_text(&dir, spec.vocab);
+    // 4 query heads over 2 key/value heads of width 16; remove one
+    // key/value head (with its two query heads) and a quarter of the 96
+    // neurons from every block.
+    let (out, report) = prune_to(&dir.0, &calib, &["--remove-heads", "1", "--remove-neurons", "0.25"]);
+    let target = out.path("model");
+    let cfg = read_json(&target.join("config.json"));
+    assert_eq!(
+        (&cfg["num_attention_heads"], &cfg["num_key_value_heads"], &cfg["head_dim"]),
+        (&json!(2), &json!(1), &json!(16))
+    );
+    assert_eq!(cfg["intermediate_size"], json!(72));
+    let st = &report["structure"];
+    assert_eq!(st["units"].as_array().unwrap().len(), 2 * spec.layers);
+    let (small, _) = read_st(&target.join("model.safetensors"));
+    assert_eq!(small["model.layers.0.self_attn.q_proj.weight"].1, vec![32, 64]);
+    assert_eq!(small["model.layers.0.self_attn.k_proj.weight"].1, vec![16, 64]);
+    assert_eq!(small["model.layers.1.self_attn.o_proj.weight"].1, vec![64, 32]);
+    assert_eq!(small["model.layers.1.mlp.gate_proj.weight"].1, vec![72, 64]);
+    assert_eq!(small["model.layers.1.mlp.down_proj.weight"].1, vec![64, 72]);
+    let params: usize = small.values().map(|t| t.1.iter().product::<usize>()).sum();
+    assert_eq!(st["params_after"].as_u64().unwrap() as usize, params);
+
+    // lopper's forward of the written model against candle's mistral code,
+    // which reads head_dim from the config (candle's llama derives it from
+    // hidden / heads, as transformers did before head_dim existed).
+    let model = Model::open(&target).unwrap();
+    let net = arch::load(&model).unwrap();
+    let ids = random_ids(3, 10, spec.vocab, 12);
+    let ours = net.forward(&Batch::new(&ids)).unwrap();
+    let mut c = cfg.clone();
+    c["sliding_window"] = json!(4096);
+    let c: ct::mistral::Config = serde_json::from_value(c).unwrap();
+    let map = candle_core::safetensors::load(target.join("model.safetensors"), &dev()).unwrap();
+    // Outside reference: candle-transformers 0.11.1 models::mistral::Model,
+    // last-position logits, run on every prefix.
+    let mut reference = ct::mistral::Model::new(&c, vb(&map)).unwrap();
+    let theirs = by_prefixes(&ids, |x| {
+        reference.clear_kv_cache();
+        reference.forward(x, 0).unwrap().squeeze(1).unwrap()
+    });
+    check("llama without 1 of 2 kv heads and 24 of 96 neurons: logits", &ours, &theirs);
+}
+
+#[test]
+fn gpt2_without_neurons_loads_in_candle_bigcode_and_runs_as_pruned() {
+    // The bigcode reference needs every head's key/value columns equal
+    // (see gpt2_matches_candle_bigcode).
+    let spec = Gpt2Spec {
+        prefix: "",
+        d: 32,
+        layers: 2,
+        heads: 4,
+        inner: Some(48),
+        vocab: 50,
+        positions: 24,
+        shared_kv: true,
+    };
+    let dir = spec.write("smaller-gpt2", 800);
+    let (calib, held) = add_text(&dir, spec.vocab);
+    let (out, report) =
+        prune_to(&dir.0, &calib, &["--remove-neurons", "12", "--eval-text", s(&held), "--method", "obs"]);
+    let target = out.path("model");
+    let cfg = read_json(&target.join("config.json"));
+    assert_eq!(cfg["n_inner"], json!(36));
+    let (small, _) = read_st(&target.join("model.safetensors"));
+    // Conv1D layouts: c_fc [d, inner] loses columns, c_proj [inner, d] rows.
+    assert_eq!(small["h.0.mlp.c_fc.weight"].1, vec![32, 36]);
+    assert_eq!(small["h.0.mlp.c_fc.bias"].1, vec![36]);
+    assert_eq!(small["h.1.mlp.c_proj.weight"].1, vec![36, 32]);
+    assert_eq!(small["h.1.mlp.c_proj.bias"].1, vec![32]);
+
+    // The written model, run by lopper, is the model the run evaluated
+    // (the pruned run zeroes the removed neurons' c_proj rows in place).
+    let o = lopper(&["eval", s(&dir.0), s(&target), "--text", s(&held), "--seq-len", "16", "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let again: Value = serde_json::from_str(&stdout(&o)).unwrap();
+    let (a, b) = (&report["eval"]["kl_mean"], &again["kl_mean"]);
+    let (a, b) = (a.as_f64().unwrap(), b.as_f64().unwrap());
+    assert!(a > 0.0 && (a - b).abs() <= 1e-6 * a, "in-run KL {a} vs written model {b}");
+
+    let model = Model::open(&target).unwrap();
+    let net = arch::load(&model).unwrap();
+    let ids = random_ids(3, 11, spec.vocab, 13);
+    let ours = net.forward(&Batch::new(&ids)).unwrap();
+    let map = candle_core::safetensors::load(target.join("model.safetensors"), &dev()).unwrap();
+    let (d, hd) = (spec.d, spec.d / spec.heads);
+    let mut m = Map::new();
+    for (name, t) in &map {
+        let t = if name.ends_with("c_attn.weight") {
+            mqa_rows(&tr(t), d, hd)
+        } else if name.ends_with("c_attn.bias") {
+            mqa_rows(t, d, hd)
+        } else if name.starts_with("h.") && t.rank() == 2 {
+            tr(t)
+        } else {
+            t.clone()
+        };
+        m.insert(format!("transformer.{name}"), t);
+    }
+    let c = ct::bigcode::Config {
+        vocab_size: spec.vocab,
+        max_position_embeddings: spec.positions,
+        num_hidden_layers: spec.layers,
+        hidden_size: d,
+        layer_norm_epsilon: 1e-5,
+        n_inner: Some(36),
+        num_attention_heads: spec.heads,
+        multi_query: true,
+        use_cache: false,
+    };
+    // Outside reference: candle-transformers 0.11.1 models::bigcode with
+    // n_inner 36, last-position logits on every prefix.
+    let mut reference = ct::bigcode::GPTBigCode::load(vb(&m), c).unwrap();
+    let theirs = by_prefixes(&ids, |x| reference.forward(x, 0).unwrap());
+    check("gpt2 without 12 of 48 neurons: logits", &ours, &theirs);
+}
+
+#[test]
+fn minilm_without_neurons_loads_in_candle_bert() {
+    let Some(dir) = model_dir() else { return };
+    // The model card shipped with the model is English text enough for 24
+    // windows of 16 tokens.
+    let calib = dir.join("README.md");
+    let (out, report) = prune_to(&dir, &calib, &["--remove-neurons", "0.25"]);
+    let target = out.path("model");
+    let cfg = read_json(&target.join("config.json"));
+    assert_eq!(cfg["intermediate_size"], json!(1152));
+    assert_eq!(report["structure"]["units"].as_array().unwrap().len(), 6);
+    let model = Model::open(&target).unwrap();
+    let net = arch::load(&model).unwrap();
+    let map = candle_core::safetensors::load(target.join("model.safetensors"), &dev()).unwrap();
+    let c: ct::bert::Config = serde_json::from_value(cfg).unwrap();
+    let mut tok = tokenizers::Tokenizer::from_file(dir.join("tokenizer.json")).unwrap();
+    tok.with_padding(None);
+    let ids = vec![tok.encode("The north pump was checked at dawn.", true).unwrap().get_ids().to_vec()];
+    // Outside reference: candle-transformers 0.11.1 models::bert::BertModel
+    // with the written config (intermediate_size 1152).
+    let reference = ct::bert::BertModel::load(vb(&map), &c).unwrap();
+    let x = ids_tensor(&ids);
+    let theirs = reference.forward(&x, &x.zeros_like().unwrap(), None).unwrap();
+    check("minilm without 384 of 1536 neurons: hidden states", &hidden(&*net, &ids), &theirs);
+}

@@ -16,8 +16,10 @@
 //!   the `num_attention_heads / num_key_value_heads` query heads that share
 //!   it, so the written config keeps query heads a multiple of key/value
 //!   heads. Rows of `q_proj`, `k_proj`, `v_proj` (and biases), columns of
-//!   `o_proj`. BERT and GPT-2 derive the head width from `hidden / heads`,
-//!   so fewer heads cannot be written in their config ([`head_limit`]).
+//!   `o_proj`. Only `llama` and `mistral` configs take an explicit
+//!   `head_dim`; BERT, GPT-2 and Qwen2 loaders derive the head width from
+//!   `hidden / heads`, so fewer heads cannot be written there
+//!   ([`head_limit`]).
 
 use super::{ArchConfig, ArchError, ArchErrorKind, Family, Linear, Result};
 use serde_json::Value;
@@ -93,18 +95,25 @@ fn bias_name(weight: &str) -> String {
     format!("{}.bias", weight.strip_suffix(".weight").unwrap_or(weight))
 }
 
-/// Why the family's config cannot express fewer heads, if it cannot.
-pub fn head_limit(family: Family) -> Option<&'static str> {
-    match family {
-        Family::Bert => Some(
+/// Why a model type's config cannot express fewer heads, if it cannot.
+/// Llama and Mistral configs take an explicit `head_dim`; the others
+/// derive the head width from the model width and the head count.
+pub fn head_limit(model_type: &str) -> Option<&'static str> {
+    match model_type {
+        "llama" | "mistral" => None,
+        "bert" => Some(
             "BERT's config.json derives the head width from hidden_size / num_attention_heads, \
              so a model with fewer heads cannot be written; remove FFN neurons only",
         ),
-        Family::Gpt2 => Some(
+        "gpt2" => Some(
             "GPT-2's config.json derives the head width from n_embd / n_head, so a model with \
              fewer heads cannot be written; remove FFN neurons only",
         ),
-        Family::Llama => None,
+        _ => Some(
+            "this model type's loaders derive the head width from hidden_size / \
+             num_attention_heads, so a model with fewer heads cannot be written; remove FFN \
+             neurons only",
+        ),
     }
 }
 
@@ -132,7 +141,7 @@ pub fn resized_config(
         obj.insert(key.to_string(), Value::from(n));
     }
     if let Some(kv) = kv_groups {
-        if let Some(why) = head_limit(cfg.family) {
+        if let Some(why) = head_limit(&cfg.model_type) {
             return Err(ArchError::new(ArchErrorKind::Config, why));
         }
         let c = super::llama::LlamaConfig::from_config(cfg)?;

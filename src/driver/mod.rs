@@ -277,15 +277,24 @@ fn check_cuts(targets: &[Target], src: &dyn LayerSource) -> Result<()> {
             for kind in [UnitKind::Neuron, UnitKind::Head] {
                 let Some(amount) = spec.amount(kind) else { continue };
                 let flag = CutSpec::flag(kind);
-                let Some(u) = units.iter().find(|u| u.kind == kind) else {
-                    let why = match (units.is_empty(), src.family().and_then(head_limit)) {
-                        (true, _) => "it needs text calibration (--text), which knows the model's \
-                                      blocks"
-                            .to_string(),
-                        (false, Some(limit)) => limit.to_string(),
-                        (false, None) => "the model has no such units".to_string(),
-                    };
-                    return Err(Error::usage(format!("{flag}: {why}")));
+                let model_type = src.model_type();
+                let limit = match kind {
+                    UnitKind::Head => model_type.as_deref().and_then(head_limit),
+                    UnitKind::Neuron => None,
+                };
+                let found = units.iter().find(|u| u.kind == kind);
+                let u = match (found, limit) {
+                    (Some(u), None) => u,
+                    (_, Some(why)) => return Err(Error::usage(format!("{flag}: {why}"))),
+                    (None, None) if units.is_empty() => {
+                        return Err(Error::usage(format!(
+                            "{flag} needs text calibration (--text), which knows the model's \
+                             blocks"
+                        )))
+                    }
+                    (None, None) => {
+                        return Err(Error::usage(format!("{flag}: the model has no such units")))
+                    }
                 };
                 let removed = amount.removed(u.count);
                 if removed >= u.count {

@@ -18,7 +18,6 @@ pub mod activations;
 pub mod text;
 
 use crate::arch::units::Units;
-use crate::arch::Family;
 use crate::calib::LayerGrams;
 use crate::error::{Error, Result};
 use crate::io::{Dtype, Model};
@@ -149,8 +148,8 @@ pub trait LayerSource {
     /// Time spent so far, by phase (text sources).
     fn timing(&self) -> Option<PhaseTimes>;
 
-    /// The architecture family, when the source runs the model.
-    fn family(&self) -> Option<Family> {
+    /// The config's `model_type`, when the source runs the model.
+    fn model_type(&self) -> Option<String> {
         None
     }
 

@@ -322,8 +322,8 @@ impl LayerSource for TextCalibration {
         Some(self.timing)
     }
 
-    fn family(&self) -> Option<arch::Family> {
-        Some(self.net.family())
+    fn model_type(&self) -> Option<String> {
+        self.description["model_type"].as_str().map(str::to_string)
     }
 
     fn units(&self, b: usize) -> Vec<arch::units::Units> {
