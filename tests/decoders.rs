@@ -298,3 +298,89 @@ fn decoder_n_of_m_and_sequential_options() {
         assert!((l["sparsity"].as_f64().unwrap() - 0.5).abs() < 1e-9);
     }
 }
+
+#[test]
+fn neurons_removed_and_the_rest_pruned_in_one_run_write_what_was_evaluated() {
+    let st = setup("llama-cut-and-prune", write_llama);
+    let r = prune(&st, &["--remove-neurons", "0.25", "--sparsity", "0.5"]);
+    let (small, _) = read_st(&st.out.join("model.safetensors"));
+    // 48 neurons less 12: gate/up keep 36 rows, down keeps 36 columns; every
+    // row of the remaining matrices keeps half its weights.
+    for i in 0..LAYERS {
+        let p = format!("model.layers.{i}.mlp");
+        for (name, shape) in [("gate_proj", [36, D]), ("up_proj", [36, D]), ("down_proj", [D, 36])]
+        {
+            let (_, sh, bytes) = &small[&format!("{p}.{name}.weight")];
+            assert_eq!(sh, &shape.to_vec(), "{p}.{name}");
+            for z in zeros_per_row(&as_f32(bytes), sh, false) {
+                assert_eq!(z, sh[1] / 2, "{p}.{name}");
+            }
+        }
+    }
+    let cfg: Value =
+        serde_json::from_str(&std::fs::read_to_string(st.out.join("config.json")).unwrap())
+            .unwrap();
+    assert_eq!(cfg["intermediate_size"], 36);
+    // The report describes the smaller layers.
+    let down = r["layers"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|l| l["name"] == "model.layers.1.mlp.down_proj.weight")
+        .unwrap();
+    assert_eq!(down["shape"], json!([D, 36]));
+    assert_eq!(down["total"], json!(D * 36));
+    let units = r["structure"]["units"].as_array().unwrap();
+    assert_eq!(units.len(), LAYERS);
+    assert_eq!(units[0]["removed"].as_array().unwrap().len(), 12);
+    // The written model is the one the run evaluated.
+    let again = eval_json(&st.model, &st.out, &st.heldout);
+    for k in ["perplexity_pruned", "kl_mean", "hidden_rel_error"] {
+        let (a, b) = (again[k].as_f64().unwrap(), r["eval"][k].as_f64().unwrap());
+        assert!((a - b).abs() <= 1e-6 * b.abs().max(1e-9), "{k}: {a} vs {b}");
+    }
+}
+
+#[test]
+fn structured_cuts_that_cannot_be_done_are_refused_before_any_work() {
+    let llama = setup("llama-cut-errors", write_llama);
+    let gpt2 = setup("gpt2-cut-errors", write_gpt2);
+    let run = |st: &Setup, extra: &[&str], needles: &[&str]| {
+        let mut args = vec!["prune", s(&st.model), "--text", s(&st.calib), "-o", s(&st.out)];
+        args.extend_from_slice(&["--seq-len", "32", "--samples", "8"]);
+        args.extend_from_slice(extra);
+        let o = lopper(&args);
+        let err = stderr(&o);
+        assert_eq!(o.status.code(), Some(2), "{extra:?}: {err}");
+        assert_eq!(err.trim_end().lines().count(), 1, "{extra:?}: {err}");
+        for n in needles {
+            assert!(err.contains(n), "{extra:?}: message lacks '{n}': {err}");
+        }
+        assert!(!st.out.exists(), "{extra:?} wrote {}", st.out.display());
+    };
+    run(&gpt2, &["--remove-heads", "1"], &["--remove-heads", "n_embd / n_head"]);
+    run(
+        &llama,
+        &["--remove-neurons", "48"],
+        &["--remove-neurons", "48 of the 48", "keep at least one"],
+    );
+    run(&llama, &["--remove-neurons", "1.5"], &["--remove-neurons", "'1.5'"]);
+    // 47 kept inputs cannot hold 2:4 groups.
+    run(&llama, &["--remove-neurons", "1", "--pattern", "2:4"], &["--remove-neurons", "47 inputs"]);
+    run(&llama, &["--remove-neurons", "4", "--skip", "*down_proj*"], &["down_proj", "--skip"]);
+    run(&llama, &["--sparsity", "0.5", "--refit"], &["--refit"]);
+    // A single file cannot carry the new config.json.
+    let file = llama.model.join("model.safetensors");
+    let o = lopper(&[
+        "prune",
+        s(&file),
+        "--text",
+        s(&llama.calib),
+        "--remove-neurons",
+        "4",
+        "-o",
+        s(&llama.out),
+    ]);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(stderr(&o).contains("model directory"), "{}", stderr(&o));
+}

@@ -832,7 +832,8 @@ fn llama_without_heads_and_neurons_loads_in_candle_mistral() {
     // 4 query heads over 2 key/value heads of width 16; remove one
     // key/value head (with its two query heads) and a quarter of the 96
     // neurons from every block.
-    let (out, report) = prune_to(&dir.0, &calib, &["--remove-heads", "1", "--remove-neurons", "0.25"]);
+    let (out, report) =
+        prune_to(&dir.0, &calib, &["--remove-heads", "1", "--remove-neurons", "0.25"]);
     let target = out.path("model");
     let cfg = read_json(&target.join("config.json"));
     assert_eq!(
@@ -888,8 +889,11 @@ fn gpt2_without_neurons_loads_in_candle_bigcode_and_runs_as_pruned() {
     };
     let dir = spec.write("smaller-gpt2", 800);
     let (calib, held) = add_text(&dir, spec.vocab);
-    let (out, report) =
-        prune_to(&dir.0, &calib, &["--remove-neurons", "12", "--eval-text", s(&held), "--method", "obs"]);
+    let (out, report) = prune_to(
+        &dir.0,
+        &calib,
+        &["--remove-neurons", "12", "--eval-text", s(&held), "--method", "obs"],
+    );
     let target = out.path("model");
     let cfg = read_json(&target.join("config.json"));
     assert_eq!(cfg["n_inner"], json!(36));
@@ -902,7 +906,8 @@ fn gpt2_without_neurons_loads_in_candle_bigcode_and_runs_as_pruned() {
 
     // The written model, run by lopper, is the model the run evaluated
     // (the pruned run zeroes the removed neurons' c_proj rows in place).
-    let o = lopper(&["eval", s(&dir.0), s(&target), "--text", s(&held), "--seq-len", "16", "--json"]);
+    let o =
+        lopper(&["eval", s(&dir.0), s(&target), "--text", s(&held), "--seq-len", "16", "--json"]);
     assert!(o.status.success(), "{}", stderr(&o));
     let again: Value = serde_json::from_str(&stdout(&o)).unwrap();
     let (a, b) = (&report["eval"]["kl_mean"], &again["kl_mean"]);
@@ -963,7 +968,8 @@ fn minilm_without_neurons_loads_in_candle_bert() {
     let c: ct::bert::Config = serde_json::from_value(cfg).unwrap();
     let mut tok = tokenizers::Tokenizer::from_file(dir.join("tokenizer.json")).unwrap();
     tok.with_padding(None);
-    let ids = vec![tok.encode("The north pump was checked at dawn.", true).unwrap().get_ids().to_vec()];
+    let ids =
+        vec![tok.encode("The north pump was checked at dawn.", true).unwrap().get_ids().to_vec()];
     // Outside reference: candle-transformers 0.11.1 models::bert::BertModel
     // with the written config (intermediate_size 1152).
     let reference = ct::bert::BertModel::load(vb(&map), &c).unwrap();

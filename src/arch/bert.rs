@@ -7,11 +7,11 @@
 //! mean pooling over tokens (or the first token when the model's
 //! `1_Pooling/config.json` asks for it).
 
+use super::units::{self, UnitKind, Units};
 use super::{
     attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, Batch, Family, Group, Kind,
     Linear, Linears, Network, Result, Tap, Weights,
 };
-use super::units::{self, UnitKind, Units};
 use candle_core::Tensor;
 
 /// How token states become one sentence embedding.
@@ -154,7 +154,14 @@ impl Network for Bert {
         let mut slices = units::producer(up, 1);
         slices.push(units::consumer(down, 1));
         let count = up.shape().0;
-        vec![Units { kind: UnitKind::Neuron, count, consumer: k.down.clone(), width: 1, group: 3, slices }]
+        vec![Units {
+            kind: UnitKind::Neuron,
+            count,
+            consumer: k.down.clone(),
+            width: 1,
+            group: 3,
+            slices,
+        }]
     }
 
     fn embed(&self, batch: &Batch) -> Result<Tensor> {

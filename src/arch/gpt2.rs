@@ -23,11 +23,11 @@
 //! (`scale_attn_weights = false`, `scale_attn_by_inverse_layer_idx = true`)
 //! are refused with an error rather than computed wrongly.
 
+use super::units::{self, UnitKind, Units};
 use super::{
     attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
     Batch, Family, Group, Kind, Linear, Linears, Network, Result, Tap, Weights,
 };
-use super::units::{self, UnitKind, Units};
 use candle_core::{Tensor, D};
 
 /// The GELU variant of `activation_function`.

@@ -31,11 +31,11 @@
 //! models use (4096 and more), and a sequence longer than the configured
 //! window is refused rather than computed with the wrong mask.
 
+use super::units::{self, Slice, UnitKind, Units};
 use super::{
     attention, merge_heads, rms_norm, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
     Batch, Family, Group, Kind, Linear, Linears, Network, Result, Tap, Weights,
 };
-use super::units::{self, Slice, UnitKind, Units};
 use candle_core::{Device, Tensor, D};
 
 /// Frequency scaling of the rotary embedding (`rope_scaling` in the config).

@@ -74,11 +74,7 @@ pub struct Units {
 /// Slices of a producer: its weight rows (storage axis 0, or 1 when stored
 /// `[d_in, d_out]`) and its bias.
 pub(crate) fn producer(l: &Linear, per_unit: usize) -> Vec<Slice> {
-    let mut v = vec![Slice {
-        tensor: l.name.clone(),
-        axis: usize::from(l.transposed),
-        per_unit,
-    }];
+    let mut v = vec![Slice { tensor: l.name.clone(), axis: usize::from(l.transposed), per_unit }];
     if l.bias.is_some() {
         v.push(Slice { tensor: bias_name(&l.name), axis: 0, per_unit });
     }
@@ -176,11 +172,9 @@ mod tests {
 
         // 8 query heads over 2 key/value heads of width 16 (hidden 128):
         // keeping one key/value head keeps its 4 query heads.
-        let c = cfg(
-            r#"{"model_type": "llama", "hidden_size": 128, "num_attention_heads": 8,
+        let c = cfg(r#"{"model_type": "llama", "hidden_size": 128, "num_attention_heads": 8,
                 "num_key_value_heads": 2, "intermediate_size": 256, "num_hidden_layers": 2,
-                "vocab_size": 50}"#,
-        );
+                "vocab_size": 50}"#);
         let j = resized_config(&c, Some(192), Some(1)).unwrap();
         assert_eq!(j["num_attention_heads"], 4);
         assert_eq!(j["num_key_value_heads"], 1);

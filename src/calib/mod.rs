@@ -44,7 +44,10 @@ impl Gram {
     /// The Gram matrix of the inputs `idx` only, `H[idx, idx]`, over the
     /// same rows.
     pub fn restricted(&self, idx: &[usize]) -> Self {
-        Gram { h: Mat::from_fn(idx.len(), idx.len(), |a, b| self.h[(idx[a], idx[b])]), rows: self.rows }
+        Gram {
+            h: Mat::from_fn(idx.len(), idx.len(), |a, b| self.h[(idx[a], idx[b])]),
+            rows: self.rows,
+        }
     }
 
     /// Add rows given row-major in `x` (`x.len() = rows · d`): `H += XᵀX`.

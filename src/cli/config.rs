@@ -145,8 +145,9 @@ pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
         (None, Some(s)) => Pattern::unstructured(s, a.job.solver.scope)
             .map_err(|e| Error::usage(format!("--sparsity {e}")))?,
         // A cut alone: nothing is pruned in what remains.
-        (None, None) if cut.is_some() => Pattern::unstructured(0.0, a.job.solver.scope)
-            .expect("0 is a valid sparsity"),
+        (None, None) if cut.is_some() => {
+            Pattern::unstructured(0.0, a.job.solver.scope).expect("0 is a valid sparsity")
+        }
         _ => return Err(Error::usage("give exactly one of --sparsity and --pattern")),
     };
     if cut.is_some() && !a.model.is_dir() {

@@ -47,7 +47,9 @@ impl FromStr for Amount {
         }
         match t.parse::<f64>() {
             Ok(f) if (0.0..1.0).contains(&f) => Ok(Amount::Fraction(f)),
-            _ => Err(format!("'{t}' must be a fraction in [0, 1) such as 0.25, or a count such as 256")),
+            _ => Err(format!(
+                "'{t}' must be a fraction in [0, 1) such as 0.25, or a count such as 256"
+            )),
         }
     }
 }
@@ -212,8 +214,10 @@ pub fn cut_units(
     let sol = group::solve_groups(w, h, units.width, keep, &params(alpha, method), par)
         .map_err(solve_err)?;
     let rel_error = objective::relative_error(w, sol.weight.as_ref(), h, par);
-    let rel_error_holdout = held.map(|hh| objective::relative_error(w, sol.weight.as_ref(), hh, par));
-    let removed_units: Vec<usize> = (0..units.count).filter(|u| sol.kept.binary_search(u).is_err()).collect();
+    let rel_error_holdout =
+        held.map(|hh| objective::relative_error(w, sol.weight.as_ref(), hh, par));
+    let removed_units: Vec<usize> =
+        (0..units.count).filter(|u| sol.kept.binary_search(u).is_err()).collect();
     let report = UnitsReport {
         block,
         kind: units.kind.plural().to_string(),

@@ -239,7 +239,8 @@ pub fn solve_narrowed(
         Some(Narrow::Rows(_)) if only_cut => Ok(None),
         Some(Narrow::Rows(rows)) => {
             let ws = Mat::from_fn(rows.len(), d_in, |r, c| w[(rows[r], c)]);
-            let mut s = solve_layer(cfg, target, &sub([rows.len(), d_in]), ws.as_ref(), grams, par)?;
+            let mut s =
+                solve_layer(cfg, target, &sub([rows.len(), d_in]), ws.as_ref(), grams, par)?;
             let mut full: Vec<f64> = (0..d_out * d_in).map(|k| w[(k / d_in, k % d_in)]).collect();
             for (i, &r) in rows.iter().enumerate() {
                 full[r * d_in..(r + 1) * d_in].copy_from_slice(&s.values[i * d_in..(i + 1) * d_in]);

@@ -20,7 +20,9 @@ mod prune;
 pub mod shrink;
 
 pub use cut::{Amount, CutSpec, UnitCut};
-pub use layer::{solve_layer, solve_narrowed, Narrow, Ridge, Solved, AUTO_RIDGE_GRID, DEFAULT_RIDGE};
+pub use layer::{
+    solve_layer, solve_narrowed, Narrow, Ridge, Solved, AUTO_RIDGE_GRID, DEFAULT_RIDGE,
+};
 pub(crate) use prune::model_meta;
 pub use prune::{prune, PruneConfig};
 

@@ -64,7 +64,11 @@ pub fn shrink(
     for cut in cuts {
         for s in &cut.units.slices {
             let info = model.get(&s.tensor).ok_or_else(|| {
-                Error::input(format!("{}: no tensor '{}'", model.layout().root().display(), s.tensor))
+                Error::input(format!(
+                    "{}: no tensor '{}'",
+                    model.layout().root().display(),
+                    s.tensor
+                ))
             })?;
             let shape = shapes.get(&s.tensor).cloned().unwrap_or_else(|| info.shape.clone());
             let current = match values.remove(&s.tensor) {
@@ -78,7 +82,8 @@ pub fn shrink(
             shapes.insert(s.tensor.clone(), new_shape);
         }
     }
-    let after_of = |kind: UnitKind| cuts.iter().find(|c| c.units.kind == kind).map(|c| c.kept.len());
+    let after_of =
+        |kind: UnitKind| cuts.iter().find(|c| c.units.kind == kind).map(|c| c.kept.len());
     let cfg = ArchConfig::read(&arch::model_dir(model))?;
     let config = resized_config(&cfg, after_of(UnitKind::Neuron), after_of(UnitKind::Head))?;
     let mut changes = serde_json::Map::new();

@@ -126,10 +126,8 @@ pub fn evaluate_models(
     pruned: &Model,
     opts: &EvalOptions,
 ) -> Result<EvalSummary, Error> {
-    let smaller = dense
-        .tensors()
-        .iter()
-        .any(|t| pruned.get(&t.name).is_some_and(|p| p.shape != t.shape));
+    let smaller =
+        dense.tensors().iter().any(|t| pruned.get(&t.name).is_some_and(|p| p.shape != t.shape));
     if !smaller {
         return evaluate(dense, &pruned_weights(dense, pruned)?, opts);
     }

@@ -27,11 +27,11 @@
 
 pub mod baseline;
 pub mod budget;
+pub mod group;
 pub mod l0;
 pub mod mask;
 mod names;
 pub mod objective;
-pub mod group;
 pub mod obs;
 
 use faer::{Mat, MatRef, Par};
