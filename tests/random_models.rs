@@ -54,12 +54,7 @@ fn generate(out: &Path, args: &[&str]) {
              (scripts/test.sh installs it: `python3 -m pip install numpy`)"
         ),
     }
-    let o = Command::new("python3")
-        .arg(&script)
-        .arg(out)
-        .args(args)
-        .output()
-        .expect("run python3");
+    let o = Command::new("python3").arg(&script).arg(out).args(args).output().expect("run python3");
     assert!(
         o.status.success(),
         "{} failed:\n{}{}",
