@@ -87,7 +87,7 @@ fn parse_args() -> Args {
     if a.models.is_empty() {
         fail("no model folder given");
     }
-    if a.seq == 0 || a.reps == 0 || a.batches.iter().any(|&b| b == 0) {
+    if a.seq == 0 || a.reps == 0 || a.batches.contains(&0) {
         fail("--seq, --reps and every --batch must be at least 1");
     }
     a
