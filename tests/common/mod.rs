@@ -13,8 +13,13 @@ pub struct Scratch(pub PathBuf);
 
 impl Scratch {
     pub fn new(tag: &str) -> Self {
+        Self::under(&std::env::temp_dir(), tag)
+    }
+    /// A scratch folder inside `base` (e.g. cargo's `CARGO_TARGET_TMPDIR`,
+    /// under target/, for models too large for a small /tmp).
+    pub fn under(base: &Path, tag: &str) -> Self {
         static N: AtomicUsize = AtomicUsize::new(0);
-        let dir = std::env::temp_dir().join(format!(
+        let dir = base.join(format!(
             "lopper-test-{}-{}-{}",
             tag,
             std::process::id(),
