@@ -631,7 +631,7 @@ pub(crate) fn swap_prices(pb: &Problem<'_>, st: &State, rem: &[usize]) -> Mat<f6
     let ns = st.slots.len();
     let mut out = Mat::<f64>::from_fn(ns, nr, |_, _| f64::INFINITY);
     let mut lm = vec![0.0; gg];
-    let mut tmp = vec![vec![0.0; gg]; 4];
+    let mut tmp = vec![vec![0.0; gg]; 5];
     for sp in 0..ns {
         lm.copy_from_slice(&mblk[sp * gg..(sp + 1) * gg]);
         if !chol(&mut lm, g) {
@@ -640,15 +640,20 @@ pub(crate) fn swap_prices(pb: &Problem<'_>, st: &State, rem: &[usize]) -> Mat<f6
         let kp = &kblk[sp * gg..(sp + 1) * gg];
         let cost = trace_solve(&lm, kp, g, &mut tmp[0]);
         for q in 0..nr {
-            let [x, gp, sp2, scratch] = &mut tmp[..] else { unreachable!() };
-            // X = M_II⁻¹ P_IJ.
+            let [x, kx, gp, sp2, scratch] = &mut tmp[..] else { unreachable!() };
+            // X = M_II⁻¹ P_IJ, then K X with K = UᵀU_II.
             for i in 0..g {
                 for j in 0..g {
                     x[i * g + j] = p[(sp * g + i, q * g + j)];
                 }
             }
             chol_solve(&lm, x, g, g);
-            // G'ᵀG' = GᵀG_JJ − XᵀC_IJ − C_IJᵀX + Xᵀ UᵀU_II X;
+            for k in 0..g {
+                for j in 0..g {
+                    kx[k * g + j] = (0..g).map(|t| kp[k * g + t] * x[t * g + j]).sum();
+                }
+            }
+            // G'ᵀG' = GᵀG_JJ − XᵀC_IJ − C_IJᵀX + Xᵀ (K X);
             // S' = S_JJ + P_IJᵀ X.
             for i in 0..g {
                 for j in 0..g {
@@ -657,13 +662,8 @@ pub(crate) fn swap_prices(pb: &Problem<'_>, st: &State, rem: &[usize]) -> Mat<f6
                     for k in 0..g {
                         let cki = c[(sp * g + k, q * g + i)];
                         let ckj = c[(sp * g + k, q * g + j)];
-                        v -= x[k * g + i] * ckj + cki * x[k * g + j];
+                        v += x[k * g + i] * (kx[k * g + j] - ckj) - cki * x[k * g + j];
                         sv += p[(sp * g + k, q * g + i)] * x[k * g + j];
-                        let mut kx = 0.0;
-                        for t in 0..g {
-                            kx += kp[k * g + t] * x[t * g + j];
-                        }
-                        v += x[k * g + i] * kx;
                     }
                     gp[i * g + j] = v;
                     sp2[i * g + j] = sv;
@@ -732,7 +732,7 @@ pub(crate) fn try_swap(pb: &Problem<'_>, st: &mut State, sp: usize, j: usize) ->
     }
     let gain = trace_solve(&ls, &gpg, g, &mut scratch);
     let delta = cost - gain;
-    if !(delta < -SWAP_TOL * st.f) {
+    if delta.is_nan() || delta >= -SWAP_TOL * st.f {
         return None;
     }
     // Remove I: M' = M − M_{:,I} R M_{I,:}, Ŵ' = Ŵ − U_I R M_{I,:}.

@@ -29,11 +29,11 @@ fn ref_refit(w: &Mat<f64>, a: &Mat<f64>, cols: &[usize]) -> Mat<f64> {
     for c in 0..k {
         let piv = (c..k).max_by(|&x, &y| m[x][c].abs().total_cmp(&m[y][c].abs())).unwrap();
         m.swap(c, piv);
-        for r in c + 1..k {
-            let f = m[r][c] / m[c][c];
-            for j in c..k + d_out {
-                let v = m[c][j];
-                m[r][j] -= f * v;
+        let pivot = m[c].clone();
+        for row in m.iter_mut().skip(c + 1) {
+            let f = row[c] / pivot[c];
+            for (v, &p) in row.iter_mut().zip(&pivot).skip(c) {
+                *v -= f * p;
             }
         }
     }
@@ -212,15 +212,12 @@ fn swap_and_removal_prices_equal_recomputed_changes() {
             g,
             &vec![false; slots.len()],
         );
-        for sp in 0..slots.len() {
+        assert_eq!(costs.len(), slots.len());
+        for (sp, &cost) in costs.iter().enumerate() {
             let mut s2 = slots.clone();
             s2.remove(sp);
             let want = ref_value(&w, &a, &s2, g) - f;
-            assert!(
-                (costs[sp] - want).abs() <= 1e-8 * f,
-                "g={g} remove {sp}: {} vs {want}",
-                costs[sp]
-            );
+            assert!((cost - want).abs() <= 1e-8 * f, "g={g} remove {sp}: {cost} vs {want}");
         }
         // The incremental swap reprices the same and leaves the exact refit.
         let (sp, j, price) = improving.expect("instance has an improving swap");
