@@ -41,14 +41,17 @@
 //! greedy backward elimination with the exact removal cost, and a swap
 //! local search from the greedy set. Greedy keeps `M` lazily as
 //! `M0 − V Vᵀ` (one `g`-column block of `V` per removal) and recomputes
-//! `M0 = A_SS⁻¹` and `Ŵ` from scratch every `⌈groups/8⌉` removals, so a
-//! removal costs `O(d_out·|S|·g + |S|·t·g²)` instead of `O(|S|²·g)`.
+//! `M0 = A_SS⁻¹` and `Ŵ` from scratch every `⌈groups/8⌉` removals; `Ŵ`
+//! itself is updated in place. A removal `t` steps after a refresh costs
+//! `O(d_out·|S|·g + |S|·t·g²)` instead of the `O(|S|²·g)` of updating `M`.
 //! The swap search prices every pair exactly each round, then applies the
 //! best non-overlapping improving pairs one by one, each re-priced exactly
 //! on the state the previous ones left (updated by the removal/addition
 //! formulas above), and ends the round with an exact refit (Cholesky of
 //! `A_SS`); a round that rounding made worse is undone and the search stops.
-//! `f` never increases.
+//! The returned weight is always the Cholesky refit of the returned set
+//! ([`refit_columns`]) and its objective is recomputed from it; Swap returns
+//! the greedy set if that refit came out worse, so `f` never increases.
 //!
 //! Everything is f64; the big products (`M A_{S,Sᶜ}`, `Ŵ A_{S,Sᶜ}`,
 //! `Ŵᵀ G`, the rank-`g` updates) are faer matrix products run with `par`.
