@@ -24,6 +24,8 @@
 //! - [`obs`]: the column-sequential Optimal Brain Surgeon sweep.
 //! - [`objective`]: objective and relative errors.
 //! - [`l0`]: refit and local search for the L0-constrained problem.
+//! - [`group`]: structured pruning: which input columns (neurons, heads) a
+//!   layer keeps, shared by every row, with the exact refit.
 
 pub mod baseline;
 pub mod budget;
