@@ -159,6 +159,7 @@ impl Network for Bert {
             count,
             consumer: k.down.clone(),
             width: 1,
+            consumer_bias: units::bias_of(down),
             group: 3,
             slices,
         }]
@@ -215,5 +216,9 @@ impl Network for Bert {
 
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
+    }
+
+    fn set_bias(&mut self, name: &str, values: &[f32]) -> Result<()> {
+        self.linears.set_bias(name, values)
     }
 }

@@ -1,6 +1,7 @@
 //! One layer's step: choose the ridge, solve, measure the calibration and
 //! held-out error, and count what the stored dtype keeps.
 
+use super::cut::MeanShift;
 use super::{JobConfig, Target};
 use crate::calib::LayerGrams;
 use crate::error::{Error, ErrorKind, Result};
@@ -83,6 +84,8 @@ pub struct Solved {
     pub report: LayerReport,
     /// Local-search objective after each sweep (when tracing).
     pub trace: Vec<f64>,
+    /// A new bias (tensor name, values) when pruning changed it.
+    pub bias: Option<(String, Vec<f64>)>,
 }
 
 /// Nonzeros of `values` once stored as `dtype` (a tiny kept weight can round
@@ -182,7 +185,7 @@ pub fn solve_layer(
         swaps: si.swaps,
         init: si.init.map(str::to_string),
     };
-    Ok(Solved { values, report, trace: si.trace })
+    Ok(Solved { values, report, trace: si.trace, bias: None })
 }
 
 /// How a structured cut of the layer's block narrows its problem.
@@ -200,6 +203,8 @@ pub enum Narrow<'a> {
         start: MatRef<'a, f64>,
         /// Ridge α the cut used.
         alpha: f64,
+        /// The bias absorbs the mean output change.
+        shift: Option<&'a MeanShift>,
     },
 }
 
@@ -248,11 +253,18 @@ pub fn solve_narrowed(
             s.values = full;
             Ok(Some(s))
         }
-        Some(Narrow::Cols { cols, start, alpha }) => {
+        Some(Narrow::Cols { cols, start, alpha, shift }) => {
             let t0 = Instant::now();
             let k = cols.len();
             let ws = Mat::from_fn(d_out, k, |r, c| start[(r, cols[c])]);
-            let gs = grams.restricted(cols);
+            // About the fitted rows' mean when the bias absorbs it (see
+            // `cut`): the refit and any pruning of what remains then fit
+            // the centred outputs.
+            let stats = match shift {
+                Some(m) => grams.centered(&m.mu),
+                None => grams.clone(),
+            };
+            let gs = stats.restricted(cols);
             let mut s = if only_cut {
                 as_is(&sub([d_out, k]), ws.as_ref(), &gs, *alpha)?
             } else {
@@ -265,11 +277,14 @@ pub fn solve_narrowed(
                 }
             }
             let what = MatRef::from_row_major_slice(&full, d_out, d_in);
-            let h = grams.calib.matrix();
-            s.report.rel_error = objective::relative_error(w, what, h, par);
-            s.report.rel_error_holdout = (grams.holdout.rows() > 0)
-                .then(|| objective::relative_error(w, what, grams.holdout.matrix(), par));
+            let (m, h) = (stats.calib.matrix(), grams.calib.matrix());
+            s.report.rel_error = objective::relative_error_with(w, what, m, h, par);
+            s.report.rel_error_holdout = (grams.holdout.rows() > 0).then(|| {
+                let (m, h) = (stats.holdout.matrix(), grams.holdout.matrix());
+                objective::relative_error_with(w, what, m, h, par)
+            });
             s.report.seconds = t0.elapsed().as_secs_f64();
+            s.bias = shift.map(|m| (m.bias.clone(), m.bias_for(w, what)));
             s.values = full;
             Ok(Some(s))
         }
@@ -303,7 +318,7 @@ fn as_is(layer: &Planned, w: MatRef<'_, f64>, grams: &LayerGrams, alpha: f64) ->
         swaps: 0,
         init: Some("cut+refit".to_string()),
     };
-    Ok(Solved { values, report, trace: Vec::new() })
+    Ok(Solved { values, report, trace: Vec::new(), bias: None })
 }
 
 /// Nonzeros of `values` as stored in `layer`'s dtype, or the error that
