@@ -192,20 +192,19 @@ pub struct PruneArgs {
     /// Solver.
     #[arg(long, value_enum, default_value = "l0")]
     pub method: Method,
-    /// Structured: remove this many FFN neurons from every block, a
-    /// fraction (0.25) or a count (384), and write a smaller model (MODEL
-    /// must be a directory; with --text). Combines with --sparsity or
-    /// --pattern, which then apply to what remains.
+    /// Remove this many FFN neurons from every block, a fraction (0.25) or
+    /// a count (384), and write a smaller model (MODEL must be a directory;
+    /// with --text). Combines with --sparsity or --pattern, which then apply
+    /// to what remains.
     #[arg(long, value_name = "F|N", help_heading = "Structured")]
     pub remove_neurons: Option<String>,
-    /// Structured: remove this many attention heads from every block, as
-    /// whole key/value heads with the query heads that share them
-    /// (Llama-family models; BERT and GPT-2 configs cannot express fewer
-    /// heads).
+    /// Remove this many key/value heads, each with the query heads that
+    /// share it, from every block (model types llama and mistral, whose
+    /// config takes head_dim; other configs cannot express fewer heads).
     #[arg(long, value_name = "F|N", help_heading = "Structured")]
     pub remove_heads: Option<String>,
-    /// Structured with --method magnitude or scaled: refit the layer that
-    /// reads the units on the kept ones, instead of only deleting the others
+    /// With --method magnitude or scaled: refit the layer that reads the
+    /// removed units on the kept ones, instead of only deleting the others
     /// (obs and l0 always refit).
     #[arg(long, help_heading = "Structured")]
     pub refit: bool,
