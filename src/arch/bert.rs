@@ -159,7 +159,6 @@ impl Network for Bert {
             count,
             consumer: k.down.clone(),
             width: 1,
-            consumer_bias: units::bias_of(down),
             group: 3,
             slices,
         }]
@@ -216,9 +215,5 @@ impl Network for Bert {
 
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
-    }
-
-    fn set_bias(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        self.linears.set_bias(name, values)
     }
 }

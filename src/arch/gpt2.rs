@@ -219,7 +219,6 @@ impl Network for Gpt2 {
             count,
             consumer: k.mlp_proj.clone(),
             width: 1,
-            consumer_bias: units::bias_of(proj),
             group: 3,
             slices,
         }]
@@ -270,10 +269,6 @@ impl Network for Gpt2 {
 
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
-    }
-
-    fn set_bias(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        self.linears.set_bias(name, values)
     }
 }
 

@@ -371,7 +371,6 @@ impl Network for Llama {
                 count: c.kv_heads,
                 consumer: k.o.clone(),
                 width: rep * c.head_dim,
-                consumer_bias: units::bias_of(self.lin(&k.o)),
                 group: 1,
                 slices: heads,
             },
@@ -380,7 +379,6 @@ impl Network for Llama {
                 count: c.intermediate,
                 consumer: k.down.clone(),
                 width: 1,
-                consumer_bias: units::bias_of(self.lin(&k.down)),
                 group: 3,
                 slices: neurons,
             },
@@ -443,10 +441,6 @@ impl Network for Llama {
 
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
-    }
-
-    fn set_bias(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        self.linears.set_bias(name, values)
     }
 }
 

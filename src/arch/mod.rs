@@ -327,14 +327,6 @@ pub trait Network: Send + Sync {
     /// [`ArchErrorKind::Weights`] for an unknown name or a wrong length.
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()>;
 
-    /// Replace the bias of the linear layer whose weight is `name`
-    /// (`[d_out]` f32).
-    ///
-    /// # Errors
-    /// [`ArchErrorKind::Weights`] for an unknown name, a layer without a
-    /// bias, or a wrong length.
-    fn set_bias(&mut self, name: &str, values: &[f32]) -> Result<()>;
-
     /// Run every block without taps and return [`Network::output`].
     fn forward(&self, batch: &Batch) -> Result<Tensor> {
         let mut x = self.embed(batch)?;
@@ -479,24 +471,6 @@ impl Linears {
             ));
         }
         l.weight = Tensor::from_slice(values, (o, i), &Device::Cpu)?;
-        Ok(())
-    }
-}
-
-impl Linears {
-    /// Replace the bias of layer `name`, checking its length.
-    pub fn set_bias(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        let l = self.by_name.get_mut(name).ok_or_else(|| {
-            ArchError::new(ArchErrorKind::Weights, format!("no linear layer '{name}'"))
-        })?;
-        let o = l.shape().0;
-        if l.bias.is_none() || values.len() != o {
-            return Err(ArchError::new(
-                ArchErrorKind::Weights,
-                format!("layer '{name}': no bias of {o} values to replace with {}", values.len()),
-            ));
-        }
-        l.bias = Some(Tensor::from_slice(values, o, &Device::Cpu)?);
         Ok(())
     }
 }

@@ -65,9 +65,6 @@ pub struct Units {
     pub consumer: String,
     /// Consumer columns (of its `[d_out, d_in]` view) per unit.
     pub width: usize,
-    /// The consumer's bias tensor, if it has one (it can absorb the mean
-    /// of what the removed units contributed).
-    pub consumer_bias: Option<String>,
     /// Index of the consumer's group in [`super::Network::groups`].
     pub group: usize,
     /// Every tensor slice a unit owns, the consumer's included.
@@ -87,11 +84,6 @@ pub(crate) fn producer(l: &Linear, per_unit: usize) -> Vec<Slice> {
 /// The consumer's input columns (storage axis 1, or 0 when transposed).
 pub(crate) fn consumer(l: &Linear, per_unit: usize) -> Slice {
     Slice { tensor: l.name.clone(), axis: usize::from(!l.transposed), per_unit }
-}
-
-/// The bias tensor of a layer, if it has one.
-pub(crate) fn bias_of(l: &Linear) -> Option<String> {
-    l.bias.as_ref().map(|_| bias_name(&l.name))
 }
 
 /// `stem.weight` → `stem.bias`.

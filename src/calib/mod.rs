@@ -28,18 +28,17 @@ pub fn holdout_count(n: usize, fraction: f64) -> usize {
     (0..n).filter(|&i| is_holdout(i, fraction)).count()
 }
 
-/// A running `XᵀX` and column sums `s = Xᵀ1` over the rows seen so far.
+/// A running `XᵀX` over the rows seen so far.
 #[derive(Clone, Debug)]
 pub struct Gram {
     h: Mat<f64>,
-    sum: Vec<f64>,
     rows: usize,
 }
 
 impl Gram {
     /// An empty accumulator for inputs of width `d`.
     pub fn new(d: usize) -> Self {
-        Gram { h: Mat::zeros(d, d), sum: vec![0.0; d], rows: 0 }
+        Gram { h: Mat::zeros(d, d), rows: 0 }
     }
 
     /// The Gram matrix of the inputs `idx` only, `H[idx, idx]`, over the
@@ -47,42 +46,8 @@ impl Gram {
     pub fn restricted(&self, idx: &[usize]) -> Self {
         Gram {
             h: Mat::from_fn(idx.len(), idx.len(), |a, b| self.h[(idx[a], idx[b])]),
-            sum: idx.iter().map(|&i| self.sum[i]).collect(),
             rows: self.rows,
         }
-    }
-
-    /// The column sums `s = Σ_i x_i`.
-    pub fn sums(&self) -> &[f64] {
-        &self.sum
-    }
-
-    /// The column means `μ = s / n` (zeros without rows).
-    pub fn means(&self) -> Vec<f64> {
-        let n = self.rows.max(1) as f64;
-        self.sum.iter().map(|v| v / n).collect()
-    }
-
-    /// The statistics of the rows shifted by `−mu`: `H` becomes
-    /// [`Gram::centered_at`]`(mu)` and `s` becomes `s − n μ`.
-    pub fn centered(&self, mu: &[f64]) -> Self {
-        let n = self.rows as f64;
-        Gram {
-            h: self.centered_at(mu),
-            sum: self.sum.iter().zip(mu).map(|(s, m)| s - n * m).collect(),
-            rows: self.rows,
-        }
-    }
-
-    /// The second moment about `mu`:
-    /// `Σ_i (x_i − μ)(x_i − μ)ᵀ = H − μ sᵀ − s μᵀ + n μ μᵀ`.
-    /// About the rows' own mean it is `H − s sᵀ / n`, the scatter matrix.
-    pub fn centered_at(&self, mu: &[f64]) -> Mat<f64> {
-        let n = self.rows as f64;
-        let (h, s) = (&self.h, &self.sum);
-        Mat::from_fn(h.nrows(), h.ncols(), |a, b| {
-            h[(a, b)] - mu[a] * s[b] - s[a] * mu[b] + n * mu[a] * mu[b]
-        })
     }
 
     /// Add rows given row-major in `x` (`x.len() = rows · d`): `H += XᵀX`.
@@ -116,20 +81,12 @@ impl Gram {
                 self.h[(r, c)] = self.h[(c, r)];
             }
         }
-        for row in x.chunks_exact(d) {
-            for (s, v) in self.sum.iter_mut().zip(row) {
-                *s += v;
-            }
-        }
         self.rows += n;
     }
 
     /// Add the statistics of disjoint rows.
     pub fn merge(&mut self, other: &Gram) {
         self.h += &other.h;
-        for (s, v) in self.sum.iter_mut().zip(&other.sum) {
-            *s += v;
-        }
         self.rows += other.rows;
     }
 
@@ -157,11 +114,6 @@ impl LayerGrams {
     /// Empty statistics for inputs of width `d`.
     pub fn new(d: usize) -> Self {
         LayerGrams { calib: Gram::new(d), holdout: Gram::new(d) }
-    }
-
-    /// Both parts shifted by `−mu` ([`Gram::centered`]).
-    pub fn centered(&self, mu: &[f64]) -> Self {
-        LayerGrams { calib: self.calib.centered(mu), holdout: self.holdout.centered(mu) }
     }
 
     /// The statistics of the inputs `idx` only: `H[idx, idx]` of both parts.
@@ -233,19 +185,6 @@ mod tests {
                 assert_eq!(r.matrix()[(a, b)], split.calib.matrix()[(i, j)]);
             }
         }
-        // Σ_i (x_i − μ)(x_i − μ)ᵀ by definition, about the fitted rows' mean.
-        let mu = split.calib.means();
-        let fit: Vec<usize> = (0..n).filter(|&i| !is_holdout(i, 0.2)).collect();
-        let mut scatter = Mat::<f64>::zeros(d, d);
-        for &i in &fit {
-            for a in 0..d {
-                for b in 0..d {
-                    scatter[(a, b)] += (x[i * d + a] - mu[a]) * (x[i * d + b] - mu[b]);
-                }
-            }
-        }
-        let c = split.calib.centered_at(&mu);
-        assert!((c - &scatter).norm_max() <= 1e-10 * want.norm_max());
         let mut total = split.calib.clone();
         total.merge(&split.holdout);
         assert!((total.matrix() - &want).norm_max() <= 1e-12 * want.norm_max());

@@ -1,7 +1,6 @@
 //! One layer's step: choose the ridge, solve, measure the calibration and
 //! held-out error, and count what the stored dtype keeps.
 
-use super::cut::MeanShift;
 use super::{JobConfig, Target};
 use crate::calib::LayerGrams;
 use crate::error::{Error, ErrorKind, Result};
@@ -84,8 +83,6 @@ pub struct Solved {
     pub report: LayerReport,
     /// Local-search objective after each sweep (when tracing).
     pub trace: Vec<f64>,
-    /// A new bias (tensor name, values) when pruning changed it.
-    pub bias: Option<(String, Vec<f64>)>,
 }
 
 /// Nonzeros of `values` once stored as `dtype` (a tiny kept weight can round
@@ -185,7 +182,7 @@ pub fn solve_layer(
         swaps: si.swaps,
         init: si.init.map(str::to_string),
     };
-    Ok(Solved { values, report, trace: si.trace, bias: None })
+    Ok(Solved { values, report, trace: si.trace })
 }
 
 /// How a structured cut of the layer's block narrows its problem.
@@ -203,8 +200,6 @@ pub enum Narrow<'a> {
         start: MatRef<'a, f64>,
         /// Ridge α the cut used.
         alpha: f64,
-        /// The bias absorbs the mean output change.
-        shift: Option<&'a MeanShift>,
     },
 }
 
@@ -253,18 +248,11 @@ pub fn solve_narrowed(
             s.values = full;
             Ok(Some(s))
         }
-        Some(Narrow::Cols { cols, start, alpha, shift }) => {
+        Some(Narrow::Cols { cols, start, alpha }) => {
             let t0 = Instant::now();
             let k = cols.len();
             let ws = Mat::from_fn(d_out, k, |r, c| start[(r, cols[c])]);
-            // About the fitted rows' mean when the bias absorbs it (see
-            // `cut`): the refit and any pruning of what remains then fit
-            // the centred outputs.
-            let stats = match shift {
-                Some(m) => grams.centered(&m.mu),
-                None => grams.clone(),
-            };
-            let gs = stats.restricted(cols);
+            let gs = grams.restricted(cols);
             let mut s = if only_cut {
                 as_is(&sub([d_out, k]), ws.as_ref(), &gs, *alpha)?
             } else {
@@ -277,14 +265,11 @@ pub fn solve_narrowed(
                 }
             }
             let what = MatRef::from_row_major_slice(&full, d_out, d_in);
-            let (m, h) = (stats.calib.matrix(), grams.calib.matrix());
-            s.report.rel_error = objective::relative_error_with(w, what, m, h, par);
-            s.report.rel_error_holdout = (grams.holdout.rows() > 0).then(|| {
-                let (m, h) = (stats.holdout.matrix(), grams.holdout.matrix());
-                objective::relative_error_with(w, what, m, h, par)
-            });
+            let h = grams.calib.matrix();
+            s.report.rel_error = objective::relative_error(w, what, h, par);
+            s.report.rel_error_holdout = (grams.holdout.rows() > 0)
+                .then(|| objective::relative_error(w, what, grams.holdout.matrix(), par));
             s.report.seconds = t0.elapsed().as_secs_f64();
-            s.bias = shift.map(|m| (m.bias.clone(), m.bias_for(w, what)));
             s.values = full;
             Ok(Some(s))
         }
@@ -318,7 +303,7 @@ fn as_is(layer: &Planned, w: MatRef<'_, f64>, grams: &LayerGrams, alpha: f64) ->
         swaps: 0,
         init: Some("cut+refit".to_string()),
     };
-    Ok(Solved { values, report, trace: Vec::new(), bias: None })
+    Ok(Solved { values, report, trace: Vec::new() })
 }
 
 /// Nonzeros of `values` as stored in `layer`'s dtype, or the error that

@@ -221,7 +221,7 @@ pub fn drive<'m>(
             let t = Instant::now();
             let mut cuts: Vec<Vec<UnitCut>> = vec![Vec::new(); targets.len()];
             for &r in &cohort {
-                cuts[r] = cut_block(cfg, targets[r], src.as_ref(), model, b, &layers, &stats, par)?;
+                cuts[r] = cut_block(cfg, targets[r], src.as_ref(), b, &layers, &stats, par)?;
                 for c in &cuts[r] {
                     sink.cut(r, c)?;
                 }
@@ -249,8 +249,7 @@ pub fn drive<'m>(
                     solve_secs += t.elapsed().as_secs_f64();
                     if let Some(solved) = solved {
                         if src.follows_pruned() {
-                            let bias = solved.bias.as_ref().map(|(_, b)| b.as_slice());
-                            src.hand_back(layer, &solved.values, bias)?;
+                            src.hand_back(layer, &solved.values)?;
                         }
                         sink.solved(r, layer, solved)?;
                     }
@@ -330,12 +329,10 @@ fn check_cuts(targets: &[Target], src: &dyn LayerSource) -> Result<()> {
 }
 
 /// The units run `target` removes from block `b`.
-#[allow(clippy::too_many_arguments)]
 fn cut_block(
     cfg: &JobConfig,
     target: Target,
     src: &dyn LayerSource,
-    model: &Model,
     b: usize,
     layers: &[Planned],
     stats: &source::BlockStats,
@@ -354,10 +351,8 @@ fn cut_block(
         let Some(amount) = spec.amount(u.kind) else { continue };
         let consumer = layers.iter().find(|l| l.name == u.consumer).expect("checked before");
         let w = src.weight(consumer)?;
-        let bias = u.consumer_bias.as_deref().map(|n| model.read_f64(n)).transpose()?;
         let grams = &stats.grams[&u.group];
-        let removed = amount.removed(u.count);
-        out.push(cut::cut_units(b, &u, removed, w.as_ref(), bias, grams, &params, par)?);
+        out.push(cut::cut_units(b, &u, amount.removed(u.count), w.as_ref(), grams, &params, par)?);
     }
     Ok(out)
 }
@@ -370,7 +365,6 @@ fn narrow_for<'a>(cuts: &'a [UnitCut], name: &str) -> Option<Narrow<'a>> {
                 cols: c.kept_columns(),
                 start: c.weight.as_ref(),
                 alpha: c.report.ridge_alpha,
-                shift: c.shift.as_ref(),
             });
         }
         if let Some(s) = c.units.slices.iter().find(|s| s.tensor == name) {

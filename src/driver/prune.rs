@@ -43,9 +43,6 @@ struct Collect {
 impl Sink for Collect {
     fn solved(&mut self, _: usize, layer: &Planned, s: Solved) -> Result<()> {
         self.replaced.insert(layer.name.clone(), layer.to_storage(s.values));
-        if let Some((name, values)) = s.bias {
-            self.replaced.insert(name, values);
-        }
         self.traces.push((layer.name.clone(), s.trace));
         self.layers.push(s.report);
         Ok(())

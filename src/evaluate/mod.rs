@@ -63,15 +63,6 @@ pub fn networks(dense: &Model, replace: &BTreeMap<String, Vec<f64>>) -> Result<N
     let a = arch::load(dense)?;
     let mut b = arch::load(dense)?;
     for (name, values) in replace {
-        // A changed bias of a linear layer (structured pruning's mean shift).
-        if let Some(stem) = name.strip_suffix(".bias") {
-            let weight = format!("{stem}.weight");
-            if b.linear(&weight).is_some() {
-                let v: Vec<f32> = values.iter().map(|&v| v as f32).collect();
-                b.set_bias(&weight, &v)?;
-                continue;
-            }
-        }
         let Some(lin) = b.linear(name) else { continue };
         let (o, i) = lin.shape();
         let w: Vec<f32> = if lin.transposed {

@@ -34,21 +34,7 @@ pub fn relative_error(
     h: MatRef<'_, f64>,
     par: Par,
 ) -> f64 {
-    relative_error_with(w, what, h, h, par)
-}
-
-/// `tr(D M Dᵀ) / tr(W H Wᵀ)`: the error measured with `M` against the
-/// dense output energy measured with `H`. With a bias that absorbs the
-/// mean of the error, `M` is the second moment about the fitted rows' mean
-/// and `H` the plain Gram matrix.
-pub fn relative_error_with(
-    w: MatRef<'_, f64>,
-    what: MatRef<'_, f64>,
-    m: MatRef<'_, f64>,
-    h: MatRef<'_, f64>,
-    par: Par,
-) -> f64 {
-    let num = objective(w, what, m, par).max(0.0);
+    let num = objective(w, what, h, par).max(0.0);
     let den: f64 = row_quadratic_forms(w, h, par).iter().sum();
     if den > 0.0 {
         num / den

@@ -167,7 +167,7 @@ impl LayerSource for Activations<'_> {
         Ok(Mat::from_fn(d_out, d_in, |r, c| flat[r * d_in + c]))
     }
 
-    fn hand_back(&mut self, _: &Planned, _: &[f64], _: Option<&[f64]>) -> Result<()> {
+    fn hand_back(&mut self, _: &Planned, _: &[f64]) -> Result<()> {
         Ok(())
     }
 

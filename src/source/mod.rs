@@ -130,12 +130,11 @@ pub trait LayerSource {
     /// An unreadable tensor.
     fn weight(&self, layer: &Planned) -> Result<Mat<f64>>;
 
-    /// Take the pruned weight of `layer` (row-major `[d_out, d_in]`) and,
-    /// when pruning changed it, its bias.
+    /// Take the pruned weight of `layer` (row-major `[d_out, d_in]`).
     ///
     /// # Errors
-    /// A weight or bias the network cannot take.
-    fn hand_back(&mut self, layer: &Planned, values: &[f64], bias: Option<&[f64]>) -> Result<()>;
+    /// A weight the network cannot take.
+    fn hand_back(&mut self, layer: &Planned, values: &[f64]) -> Result<()>;
 
     /// Block `b` is solved: move on to the next one.
     ///

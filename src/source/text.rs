@@ -294,14 +294,9 @@ impl LayerSource for TextCalibration {
         Ok(Mat::from_fn(d_out, d_in, |r, c| flat[r * d_in + c]))
     }
 
-    fn hand_back(&mut self, layer: &Planned, values: &[f64], bias: Option<&[f64]>) -> Result<()> {
+    fn hand_back(&mut self, layer: &Planned, values: &[f64]) -> Result<()> {
         let f32s: Vec<f32> = values.iter().map(|&v| v as f32).collect();
-        self.net.set_weight(&layer.name, &f32s)?;
-        if let Some(b) = bias {
-            let f32s: Vec<f32> = b.iter().map(|&v| v as f32).collect();
-            self.net.set_bias(&layer.name, &f32s)?;
-        }
-        Ok(())
+        Ok(self.net.set_weight(&layer.name, &f32s)?)
     }
 
     fn finish_block(&mut self, b: usize) -> Result<()> {
