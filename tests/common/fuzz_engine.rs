@@ -105,7 +105,7 @@ fn sprig_seeds() -> Vec<Vec<u8>> {
     wide[3] = 1.0;
     wide[70_000 + 69_999] = -4.0;
     let g = [0.0, 0.0, 2.0, 0.0, 0.0, 0.0, 0.0, 5.0, 0.0, 7.0];
-    let sets = vec![
+    let sets = [
         vec![
             PackedLayer {
                 name: "b.weight".into(),
