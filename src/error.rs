@@ -100,6 +100,13 @@ impl Error {
         Error::new(kind, message).with_layer(layer).with_source(e)
     }
 
+    /// The same error, charged to `kind` (e.g. a solver failure caused by the
+    /// user's `--ridge`).
+    pub fn with_kind(mut self, kind: ErrorKind) -> Self {
+        self.kind = kind;
+        self
+    }
+
     /// Record the file the error is about.
     pub fn with_path(mut self, path: &Path) -> Self {
         self.path = Some(path.to_path_buf());
@@ -121,6 +128,12 @@ impl Error {
     /// Prefix the message with where it happened (`"timing l0-0.5"`).
     pub fn context(mut self, what: impl fmt::Display) -> Self {
         self.message = format!("{what}: {}", self.message);
+        self
+    }
+
+    /// Add `text` to the end of the message.
+    pub fn append(mut self, text: &str) -> Self {
+        self.message.push_str(text);
         self
     }
 
@@ -147,7 +160,9 @@ impl Error {
 
 impl fmt::Display for Error {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(&self.message)
+        // Names from input files may hold control characters: escape them,
+        // so the message stays one line and the terminal sees no raw bytes.
+        f.write_str(&io::escape(&self.message))
     }
 }
 

@@ -15,6 +15,7 @@ use tokenizers::Tokenizer;
 /// the first invalid sequence.
 pub fn read_text(path: &Path) -> Result<String, Error> {
     let bad = |m: String| Error::input(format!("{}: {m}", path.display())).with_path(path);
+    crate::io::check_regular(path).map_err(Error::from)?;
     let bytes = std::fs::read(path).map_err(|e| bad(format!("cannot read text ({e})")))?;
     let text = String::from_utf8(bytes).map_err(|e| {
         let at = e.utf8_error().valid_up_to();

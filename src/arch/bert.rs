@@ -9,8 +9,8 @@
 
 use super::units::{self, UnitKind, Units};
 use super::{
-    attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, Batch, Family, Group, Kind,
-    Linear, Linears, Network, Result, Tap, Weights,
+    attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
+    Batch, Family, Group, Kind, Linear, Linears, Network, Result, Tap, Weights,
 };
 use candle_core::Tensor;
 
@@ -48,14 +48,31 @@ pub struct Bert {
 impl Bert {
     /// Build from the config and the model's tensors.
     pub fn new(cfg: &ArchConfig, w: &Weights<'_>) -> Result<Self> {
-        let d = cfg.usize("hidden_size")?;
+        let bad = |m: String| ArchError::new(ArchErrorKind::Config, format!("{}: {m}", cfg.path));
+        let d = cfg.positive("hidden_size")?;
         let layers = cfg.usize("num_hidden_layers")?;
-        let heads = cfg.usize("num_attention_heads")?;
-        let inter = cfg.usize("intermediate_size")?;
+        let heads = cfg.positive("num_attention_heads")?;
+        if d % heads != 0 {
+            return Err(bad(format!(
+                "\"hidden_size\" = {d} is not a multiple of \"num_attention_heads\" = {heads}"
+            )));
+        }
+        let inter = cfg.positive("intermediate_size")?;
         let vocab = cfg.usize("vocab_size")?;
         let max_pos = cfg.usize_or("max_position_embeddings", 512);
         let types = cfg.usize_or("type_vocab_size", 2);
-        let eps = cfg.f64_or("layer_norm_eps", 1e-12);
+        let eps = cfg.eps_or("layer_norm_eps", 1e-12)?;
+        // The MLP is GELU in its erf form (`transformers`' "gelu").
+        match cfg.json.get("hidden_act") {
+            None => {}
+            Some(serde_json::Value::String(a)) if a == "gelu" || a == "gelu_python" => {}
+            Some(other) => {
+                return Err(bad(format!(
+                    "\"hidden_act\" {other} is not supported for bert (supported: \"gelu\", \
+                     \"gelu_python\")"
+                )))
+            }
+        }
         let p = w.prefix(&["", "bert."], "embeddings.word_embeddings.weight").unwrap_or("");
         let ln = |stem: &str| -> Result<(Tensor, Tensor)> {
             Ok((

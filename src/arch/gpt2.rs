@@ -108,7 +108,7 @@ impl Gpt2Config {
             inner: cfg.usize_or("n_inner", 4 * hidden),
             vocab: cfg.usize("vocab_size")?,
             positions: cfg.usize_or("n_positions", 1024),
-            eps: cfg.f64_or("layer_norm_epsilon", 1e-5),
+            eps: cfg.eps_or("layer_norm_epsilon", 1e-5)?,
             gelu,
         })
     }

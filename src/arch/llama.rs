@@ -106,6 +106,12 @@ impl LlamaConfig {
                 "num_attention_heads = {heads} is not a multiple of num_key_value_heads = {kv_heads}"
             )));
         }
+        if cfg.json.get("head_dim").and_then(|v| v.as_u64()).is_none() && hidden % heads != 0 {
+            return Err(bad(format!(
+                "\"hidden_size\" = {hidden} is not a multiple of \"num_attention_heads\" = \
+                 {heads} (and there is no \"head_dim\")"
+            )));
+        }
         let head_dim = cfg.usize_or("head_dim", hidden / heads);
         if head_dim == 0 || head_dim % 2 != 0 {
             return Err(bad(format!("head width {head_dim} is not a positive even number")));
@@ -130,7 +136,7 @@ impl LlamaConfig {
             head_dim,
             intermediate: cfg.usize("intermediate_size")?,
             vocab: cfg.usize("vocab_size")?,
-            eps: cfg.f64_or("rms_norm_eps", 1e-6),
+            eps: cfg.eps_or("rms_norm_eps", 1e-6)?,
             rope_theta: cfg.f64_or("rope_theta", 10_000.0),
             rope_scaling: read_rope_scaling(cfg)?,
             tie_word_embeddings: cfg.bool_or("tie_word_embeddings", false),

@@ -137,6 +137,8 @@ impl ArchConfig {
     pub fn read(dir: &Path) -> Result<Self> {
         let path = dir.join("config.json");
         let shown = path.display().to_string();
+        crate::io::check_regular(&path)
+            .map_err(|e| ArchError::new(ArchErrorKind::Config, e.to_string()))?;
         let text = std::fs::read_to_string(&path).map_err(|e| {
             ArchError::new(
                 ArchErrorKind::Config,
@@ -194,6 +196,36 @@ impl ArchConfig {
     /// An optional float field.
     pub fn f64_or(&self, key: &str, default: f64) -> f64 {
         self.json.get(key).and_then(|v| v.as_f64()).unwrap_or(default)
+    }
+
+    /// An optional normalisation ε: refused when negative or not finite
+    /// (a negative ε under the square root gives NaN everywhere).
+    pub fn eps_or(&self, key: &str, default: f64) -> Result<f64> {
+        let v = match self.json.get(key) {
+            None | Some(serde_json::Value::Null) => return Ok(default),
+            Some(v) => v.as_f64(),
+        };
+        match v {
+            Some(e) if e.is_finite() && e >= 0.0 => Ok(e),
+            _ => Err(ArchError::new(
+                ArchErrorKind::Config,
+                format!(
+                    "{}: \"{key}\" must be a finite number >= 0, not {}",
+                    self.path, self.json[key]
+                ),
+            )),
+        }
+    }
+
+    /// A required unsigned integer field that must be at least 1.
+    pub fn positive(&self, key: &str) -> Result<usize> {
+        match self.usize(key)? {
+            0 => Err(ArchError::new(
+                ArchErrorKind::Config,
+                format!("{}: \"{key}\" is 0; it must be at least 1", self.path),
+            )),
+            v => Ok(v),
+        }
     }
 
     /// An optional boolean field.
@@ -355,11 +387,61 @@ pub fn model_dir(model: &Model) -> std::path::PathBuf {
 pub fn load(model: &Model) -> Result<Box<dyn Network>> {
     let cfg = ArchConfig::read(&model_dir(model))?;
     let w = Weights::new(model);
-    Ok(match cfg.family {
+    let net: Box<dyn Network> = match cfg.family {
         Family::Bert => Box::new(bert::Bert::new(&cfg, &w)?),
         Family::Llama => Box::new(llama::Llama::new(&cfg, &w)?),
         Family::Gpt2 => Box::new(gpt2::Gpt2::new(&cfg, &w)?),
-    })
+    };
+    check_blocks(&cfg, model, net.as_ref())?;
+    Ok(net)
+}
+
+/// Refuse a config whose block count leaves blocks of the weights unused:
+/// every tensor under the blocks' common prefix (`encoder.layer.`,
+/// `model.layers.`, `h.`) must belong to a block the network runs, so no
+/// prunable weight is silently left out.
+fn check_blocks(cfg: &ArchConfig, model: &Model, net: &dyn Network) -> Result<()> {
+    let key = match cfg.family {
+        Family::Gpt2 => "n_layer",
+        _ => "num_hidden_layers",
+    };
+    let n = net.num_blocks();
+    if n == 0 {
+        return Err(ArchError::new(
+            ArchErrorKind::Config,
+            format!("{}: \"{key}\" is 0; the model has no blocks to calibrate", cfg.path),
+        ));
+    }
+    // The prefix of block 0's first linear, up to its index.
+    let Some(first) = net.groups(0).into_iter().flat_map(|g| g.layers).next() else {
+        return Ok(());
+    };
+    let Some(at) =
+        first.find(".0.").map(|i| i + 1).or_else(|| first.starts_with("0.").then_some(0))
+    else {
+        return Ok(());
+    };
+    let prefix = &first[..at];
+    for t in model.tensors() {
+        let Some(rest) = t.name.strip_prefix(prefix) else { continue };
+        let digits: String = rest.chars().take_while(char::is_ascii_digit).collect();
+        let index = match digits.parse::<usize>() {
+            Ok(i) if rest[digits.len()..].starts_with('.') => i,
+            _ => continue,
+        };
+        if index >= n {
+            return Err(ArchError::new(
+                ArchErrorKind::Config,
+                format!(
+                    "{}: \"{key}\" is {n}, but the weights hold more blocks (tensor '{}' of \
+                     block {index} would be left out); fix \"{key}\"",
+                    cfg.path,
+                    crate::io::escape(&t.name)
+                ),
+            ));
+        }
+    }
+    Ok(())
 }
 
 /// Tensor access for the family constructors: reads any float dtype as f32
@@ -537,6 +619,62 @@ pub fn rows(x: &Tensor) -> Result<Tensor> {
 pub fn to_f64_rows(x: &Tensor) -> Result<Vec<f64>> {
     let v: Vec<f32> = x.to_dtype(DType::F32)?.flatten_all()?.to_vec1()?;
     Ok(v.into_iter().map(f64::from).collect())
+}
+
+#[cfg(test)]
+mod config_checks {
+    use super::*;
+
+    fn cfg(json: &str) -> ArchConfig {
+        ArchConfig::parse(json, "m/config.json").unwrap()
+    }
+
+    #[test]
+    fn norm_eps_must_be_finite_and_not_negative() {
+        let c = cfg(r#"{"model_type":"llama","layer_norm_eps":-1e-5,"rms_norm_eps":-1,"x":1e-6}"#);
+        for key in ["layer_norm_eps", "rms_norm_eps"] {
+            let e = c.eps_or(key, 1e-6).unwrap_err().to_string();
+            assert!(e.starts_with("m/config.json: ") && e.contains(key), "{e}");
+        }
+        assert_eq!(c.eps_or("x", 1.0).unwrap(), 1e-6);
+        assert_eq!(c.eps_or("absent", 0.5).unwrap(), 0.5);
+        let c = cfg(r#"{"model_type":"llama","rms_norm_eps":"tiny"}"#);
+        assert!(c.eps_or("rms_norm_eps", 1e-6).is_err());
+        // Through the family readers.
+        let base = r#""model_type":"llama","hidden_size":8,"num_attention_heads":2,"num_hidden_layers":1,"intermediate_size":4,"vocab_size":5"#;
+        let e =
+            llama::LlamaConfig::from_config(&cfg(&format!("{{{base},\"rms_norm_eps\":-1e-6}}")))
+                .unwrap_err()
+                .to_string();
+        assert!(e.contains("config.json") && e.contains("rms_norm_eps"), "{e}");
+        let g = r#""model_type":"gpt2","n_embd":8,"n_head":2,"n_layer":1,"vocab_size":5"#;
+        let e = gpt2::Gpt2Config::from_config(&cfg(&format!("{{{g},\"layer_norm_epsilon\":-1}}")))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("config.json") && e.contains("layer_norm_epsilon"), "{e}");
+    }
+
+    #[test]
+    fn llama_heads_must_divide_the_width_without_head_dim() {
+        let base =
+            r#""model_type":"llama","num_hidden_layers":1,"intermediate_size":4,"vocab_size":5"#;
+        let e = llama::LlamaConfig::from_config(&cfg(&format!(
+            "{{{base},\"hidden_size\":10,\"num_attention_heads\":4}}"
+        )))
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains("config.json")
+                && e.contains("hidden_size")
+                && e.contains("num_attention_heads"),
+            "{e}"
+        );
+        // An explicit head_dim may differ from hidden / heads.
+        assert!(llama::LlamaConfig::from_config(&cfg(&format!(
+            "{{{base},\"hidden_size\":10,\"num_attention_heads\":4,\"head_dim\":4}}"
+        )))
+        .is_ok());
+    }
 }
 
 #[cfg(test)]

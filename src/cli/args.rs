@@ -99,14 +99,14 @@ pub struct CalibrationArgs {
     pub text: Option<PathBuf>,
     /// Text calibration: number of token windows drawn from the text
     /// [default: 128]
-    #[arg(long, value_name = "N")]
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
     pub samples: Option<usize>,
     /// Text calibration: tokens per window, special tokens included
     /// [default: 128 for encoders, 256 for decoders]
-    #[arg(long, value_name = "L")]
+    #[arg(long, value_name = "L", allow_hyphen_values = true)]
     pub seq_len: Option<usize>,
     /// Text calibration: seed for drawing the windows [default: 0]
-    #[arg(long, value_name = "SEED")]
+    #[arg(long, value_name = "SEED", allow_hyphen_values = true)]
     pub seed: Option<u64>,
     /// Text calibration: collect every block's inputs from the dense model
     /// instead of from the already pruned blocks before it (compare: every
@@ -137,11 +137,11 @@ pub struct SolverArgs {
     #[arg(long, value_name = "ALPHA|auto", allow_hyphen_values = true)]
     pub ridge: Option<String>,
     /// Local search: most swap sweeps per layer [default: 20]
-    #[arg(long, value_name = "N")]
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
     pub max_sweeps: Option<usize>,
     /// Local search: most seconds per layer, checked between sweeps
     /// [default: no limit]
-    #[arg(long, value_name = "SECS")]
+    #[arg(long, value_name = "SECS", allow_hyphen_values = true)]
     pub layer_seconds: Option<f64>,
 }
 
@@ -151,7 +151,7 @@ pub struct SolverArgs {
 pub struct RunArgs {
     /// Worker threads (0 = all cores; more than the cores is capped, with a
     /// note).
-    #[arg(long, value_name = "N", default_value_t = 0)]
+    #[arg(long, value_name = "N", default_value_t = 0, allow_hyphen_values = true)]
     pub threads: usize,
     /// Print nothing but errors (no progress bar, no table).
     #[arg(long, short = 'q')]
@@ -187,7 +187,7 @@ pub struct PruneArgs {
     pub sparsity: Option<f64>,
     /// N:M pattern instead of --sparsity: at most N nonzeros in each group of
     /// M consecutive inputs of a row (e.g. 2:4).
-    #[arg(long, value_name = "N:M", conflicts_with_all = ["sparsity", "scope"])]
+    #[arg(long, value_name = "N:M", conflicts_with_all = ["sparsity", "scope"], allow_hyphen_values = true)]
     pub pattern: Option<String>,
     /// Solver.
     #[arg(long, value_enum, default_value = "l0")]
@@ -196,12 +196,12 @@ pub struct PruneArgs {
     /// a count (384), and write a smaller model (MODEL must be a directory;
     /// with --text). Combines with --sparsity or --pattern, which then apply
     /// to what remains.
-    #[arg(long, value_name = "F|N", help_heading = "Structured")]
+    #[arg(long, value_name = "F|N", help_heading = "Structured", allow_hyphen_values = true)]
     pub remove_neurons: Option<String>,
     /// Remove this many key/value heads, each with the query heads that
     /// share it, from every block (model types llama and mistral, whose
     /// config takes head_dim; other configs cannot express fewer heads).
-    #[arg(long, value_name = "F|N", help_heading = "Structured")]
+    #[arg(long, value_name = "F|N", help_heading = "Structured", allow_hyphen_values = true)]
     pub remove_heads: Option<String>,
     /// With --method magnitude or scaled: refit the layer that reads the
     /// removed units on the kept ones, instead of only deleting the others
@@ -233,7 +233,7 @@ pub struct CompareArgs {
     #[arg(long, value_name = "S,S,...", value_delimiter = ',', allow_negative_numbers = true)]
     pub sparsities: Vec<f64>,
     /// N:M pattern targets, comma-separated (e.g. 2:4,4:8).
-    #[arg(long, value_name = "N:M,...", value_delimiter = ',')]
+    #[arg(long, value_name = "N:M,...", value_delimiter = ',', allow_hyphen_values = true)]
     pub patterns: Vec<String>,
     /// Methods to run, comma-separated.
     #[arg(long, value_enum, value_delimiter = ',', default_value = "magnitude,scaled,obs,l0")]
@@ -248,11 +248,11 @@ pub struct CompareArgs {
     /// With --keep-models: time every run's pruned layers, dense against
     /// sparse kernels, at this batch size (as `lopper speed` does) and add a
     /// speed column to the page.
-    #[arg(long, value_name = "B")]
+    #[arg(long, value_name = "B", allow_hyphen_values = true)]
     pub speed_batch: Option<usize>,
     /// Target for the per-layer chart (one of the sparsities or patterns)
     /// [default: the highest sparsity, else the first pattern]
-    #[arg(long, value_name = "S|N:M")]
+    #[arg(long, value_name = "S|N:M", allow_hyphen_values = true)]
     pub focus: Option<String>,
     /// Calibration, solver, selection and run flags.
     #[command(flatten)]
@@ -273,17 +273,17 @@ pub struct EvalArgs {
     pub text: PathBuf,
     /// Most lines (encoders) or windows (decoders) to evaluate
     /// [default: 1000 lines, 64 windows]
-    #[arg(long, value_name = "N")]
+    #[arg(long, value_name = "N", allow_hyphen_values = true)]
     pub samples: Option<usize>,
     /// Decoders: tokens per window [default: 256]
-    #[arg(long, value_name = "L")]
+    #[arg(long, value_name = "L", allow_hyphen_values = true)]
     pub seq_len: Option<usize>,
     /// Print JSON instead of a sentence.
     #[arg(long)]
     pub json: bool,
     /// Worker threads (0 = all cores; more than the cores is capped, with a
     /// note).
-    #[arg(long, value_name = "N", default_value_t = 0)]
+    #[arg(long, value_name = "N", default_value_t = 0, allow_hyphen_values = true)]
     pub threads: usize,
 }
 
@@ -307,7 +307,13 @@ pub struct SpeedArgs {
     /// model directory.
     pub model: PathBuf,
     /// Batch sizes (rows of x in y = x Wᵀ), comma-separated.
-    #[arg(long, value_name = "B,B,..", value_delimiter = ',', default_value = "1,8,64")]
+    #[arg(
+        long,
+        value_name = "B,B,..",
+        value_delimiter = ',',
+        default_value = "1,8,64",
+        allow_hyphen_values = true
+    )]
     pub batch: Vec<usize>,
     /// Seconds of sampling per kernel and batch size, at least.
     #[arg(long, value_name = "SECS", default_value_t = 0.2, allow_negative_numbers = true)]
@@ -340,7 +346,7 @@ pub struct ReportArgs {
     pub output: PathBuf,
     /// Target for the per-layer chart (a sparsity such as 0.7, or N:M)
     /// [default: the highest sparsity, else the first pattern]
-    #[arg(long, value_name = "S|N:M")]
+    #[arg(long, value_name = "S|N:M", allow_hyphen_values = true)]
     pub focus: Option<String>,
     /// Print nothing but errors.
     #[arg(long, short = 'q')]

@@ -76,7 +76,13 @@ pub(super) fn run(a: &InspectArgs) -> Result<()> {
 
 fn table(l: &Listing) -> String {
     use std::fmt::Write as _;
-    let w = l.tensors.iter().map(|r| r.name.len()).max().unwrap_or(6).max(6);
+    let w = l
+        .tensors
+        .iter()
+        .map(|r| crate::io::escape(&r.name).chars().count())
+        .max()
+        .unwrap_or(6)
+        .max(6);
     let mut s = String::new();
     let _ = writeln!(
         s,
@@ -88,7 +94,7 @@ fn table(l: &Listing) -> String {
         let _ = writeln!(
             s,
             "{:<w$}  {:<5}  {:>15}  {:>12}  {:>6.2}%  {}",
-            r.name,
+            crate::io::escape(&r.name),
             r.dtype,
             shape,
             r.params,

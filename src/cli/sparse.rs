@@ -71,7 +71,12 @@ pub(super) fn pack(a: &PackArgs) -> Result<()> {
     bar.finish_and_clear();
     let packed = packed?;
     if !a.quiet {
-        let w = packed.iter().map(|l| l.name.len()).max().unwrap_or(5).max(5);
+        let w = packed
+            .iter()
+            .map(|l| crate::io::escape(&l.name).chars().count())
+            .max()
+            .unwrap_or(5)
+            .max(5);
         let mut s = String::new();
         let _ = writeln!(
             s,
@@ -86,7 +91,7 @@ pub(super) fn pack(a: &PackArgs) -> Result<()> {
             let _ = writeln!(
                 s,
                 "{:<w$}  {:>11}  {:>9}  {:>10}  {:>10}",
-                l.name,
+                crate::io::escape(&l.name),
                 format!("{o}x{i}"),
                 layout,
                 bytes(d),
@@ -147,7 +152,13 @@ fn speed_table(r: &SpeedReport) -> String {
         if r.weights == "streamed" { "streamed from memory" } else { "resident (cache)" },
         r.min_time
     );
-    let w = r.layers.iter().map(|l| l.name.len()).max().unwrap_or(5).max(9);
+    let w = r
+        .layers
+        .iter()
+        .map(|l| crate::io::escape(&l.name).chars().count())
+        .max()
+        .unwrap_or(5)
+        .max(9);
     let mut head = format!(
         "{:<w$}  {:>11}  {:>6}  {:>8}  {:>21}",
         "layer", "shape", "zeros", "layout", "bytes dense → sparse"
@@ -191,7 +202,7 @@ fn speed_table(r: &SpeedReport) -> String {
         let layout = format!("{}/{}b", l.layout, l.index_bits);
         row(
             &mut s,
-            &l.name,
+            &crate::io::escape(&l.name),
             &format!("{}x{}", l.shape[0], l.shape[1]),
             &format!("{:.1}%", 100.0 * l.zero_fraction),
             &layout,

@@ -52,6 +52,7 @@ pub struct CalibrationInfo {
     /// The file, as given.
     pub path: String,
     /// Fraction of rows held out from the solvers.
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
     pub holdout: f64,
     /// One line for people, e.g. `activations from acts.safetensors, 1382
     /// fitted + 154 held-out rows per layer`.
@@ -100,6 +101,7 @@ pub struct LayerInfo {
     pub holdout_rows: usize,
     /// Seconds spent reading the layer's inputs and building its Gram
     /// matrices, once for all runs.
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
     pub gram_seconds: f64,
 }
 
@@ -110,6 +112,7 @@ pub struct EndToEnd {
     /// What `value` measures, e.g. `mean cosine` or `perplexity`.
     pub metric: String,
     /// The pruned model's figure.
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
     pub value: f64,
     /// The dense model's figure, where the metric has one.
     pub dense: Option<f64>,
@@ -127,8 +130,10 @@ pub struct Speed {
     /// Rows per product.
     pub batch: usize,
     /// Dense seconds summed over the pruned layers.
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
     pub dense_seconds: f64,
     /// Sparse-kernel seconds summed over the pruned layers.
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
     pub sparse_seconds: f64,
 }
 
@@ -181,6 +186,10 @@ pub struct Comparison {
     pub status_detail: Option<String>,
     /// Model path as given.
     pub model: String,
+    /// [`crate::io::Model::fingerprint`] of the model (absent in files of
+    /// older versions).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub model_fingerprint: Option<String>,
     /// Calibration data.
     pub calibration: CalibrationInfo,
     /// How the set was run.
@@ -303,6 +312,7 @@ pub struct Source {
 /// One line naming `path`: unreadable, not JSON, or neither kind of report.
 pub fn load(path: &Path) -> Result<Source, String> {
     let shown = path.display();
+    crate::io::check_regular(path).map_err(|e| e.to_string())?;
     let text =
         std::fs::read_to_string(path).map_err(|e| format!("{shown}: cannot read it: {e}"))?;
     let value: serde_json::Value = serde_json::from_str(&text)
@@ -412,6 +422,7 @@ pub fn from_prune_report(r: Report, date: &str) -> Comparison {
         status: Status::Complete,
         status_detail: None,
         model: s.model.clone(),
+        model_fingerprint: s.model_fingerprint.clone(),
         calibration: CalibrationInfo {
             kind: kind.to_string(),
             path,
@@ -475,6 +486,15 @@ pub fn check_compatible(sources: &[Source]) -> Result<(), String> {
                 "{fa} and {fb} describe different models ('{ma}' vs '{mb}'); only reports of \
                  the same model can be put side by side"
             ));
+        }
+        if let (Some(x), Some(y)) = (&a.model_fingerprint, &b.model_fingerprint) {
+            if x != y {
+                return Err(format!(
+                    "{fa} and {fb} describe different models: both are called '{ma}' but their \
+                     tensors differ (model fingerprint {x} vs {y}); only reports of the same \
+                     model can be put side by side"
+                ));
+            }
         }
         if a.layers.len() != b.layers.len() {
             return Err(format!(
@@ -553,6 +573,7 @@ pub(crate) mod testing {
             status: Status::Complete,
             status_detail: None,
             model: "m.safetensors".into(),
+            model_fingerprint: None,
             calibration: CalibrationInfo {
                 kind: "activations".into(),
                 path: "a".into(),

@@ -159,7 +159,7 @@ impl Record<'_> {
         };
         let meta = driver::model_meta(&self.cfg.job, target, self.planned.len());
         let _guard = self.control.writing.lock().unwrap_or_else(|e| e.into_inner());
-        io::write_model(self.model, &out, replaced, &meta)?;
+        driver::write_checked(self.model, || io::write_model(self.model, &out, replaced, &meta))?;
         self.comp.runs[run].model_output = Some(out.display().to_string());
         self.outputs.push(out);
         Ok(())
@@ -301,6 +301,7 @@ pub fn compare(
         status: Status::Running,
         status_detail: None,
         model: job.model.display().to_string(),
+        model_fingerprint: Some(model.fingerprint()),
         calibration: CalibrationInfo {
             kind: kind.to_string(),
             path: calib.display().to_string(),

@@ -85,6 +85,16 @@ pub struct Solved {
     pub trace: Vec<f64>,
 }
 
+/// `a` as the user would write it: plain for ordinary values, in
+/// scientific notation when very large or small.
+fn short(a: f64) -> String {
+    if a != 0.0 && !(1e-4..1e6).contains(&a.abs()) {
+        format!("{a:e}")
+    } else {
+        format!("{a}")
+    }
+}
+
 /// Nonzeros of `values` once stored as `dtype` (a tiny kept weight can round
 /// to zero in F16/BF16, and the report counts what the file holds).
 fn stored_nonzeros(values: &[f64], dtype: io::Dtype) -> Result<usize, String> {
@@ -121,7 +131,57 @@ pub fn solve_layer(
         obs_block: 128,
         l0: L0Params { trace: cfg.trace, ..cfg.l0.clone() },
     };
-    let solve_err = |e| Error::solve(name, [d_out, d_in], e);
+    // Statistics that overflowed (activations beyond about 1e154) or hold
+    // NaN cannot be solved on: the input's fault, named.
+    for (what, m) in [("calibration", Some(h)), ("held-out", held)] {
+        let Some(m) = m else { continue };
+        let finite = (0..m.ncols()).all(|c| (0..m.nrows()).all(|r| m[(r, c)].is_finite()));
+        if !finite {
+            return Err(Error::input(format!(
+                "layer '{}' [{d_out}, {d_in}]: the Gram matrix XᵀX of its {what} inputs is not \
+                 finite (inputs too large, above about 1e154, or not numbers); rescale or check \
+                 the calibration inputs",
+                crate::io::escape(name)
+            ))
+            .with_layer(name));
+        }
+    }
+    let solve_err = |e: solve::SolveError| {
+        let fixed = match cfg.ridge {
+            Ridge::Fixed(a) => Some(a),
+            Ridge::Auto { .. } => None,
+        };
+        match (&e, fixed) {
+            // With the user's own α the failure is the option's to fix.
+            (solve::SolveError::NotPositiveDefinite { .. }, Some(a)) => {
+                let why = if a == 0.0 {
+                    " (with --ridge 0 the layer's calibration inputs must be linearly \
+                     independent; these are not, so the least-squares problem has no unique \
+                     solution: use --ridge > 0, e.g. --ridge 0.01)"
+                } else {
+                    ""
+                };
+                Error::solve(name, [d_out, d_in], e)
+                    .context(format!("--ridge {}", short(a)))
+                    .with_kind(ErrorKind::Usage)
+                    .append(why)
+            }
+            _ => Error::solve(name, [d_out, d_in], e),
+        }
+    };
+    if let Ridge::Fixed(a) = cfg.ridge {
+        let lambda = solve::ridge_lambda(h, a);
+        if !lambda.is_finite() {
+            let mean = (0..d_in).map(|j| h[(j, j)]).sum::<f64>() / d_in.max(1) as f64;
+            return Err(Error::usage(format!(
+                "--ridge {}: λ = α · mean(diag(XᵀX)) = {a:e} · {mean:.3e} overflows for layer \
+                 '{}' [{d_out}, {d_in}]; use a smaller --ridge",
+                short(a),
+                crate::io::escape(name)
+            ))
+            .with_layer(name));
+        }
+    }
     let alpha = match cfg.ridge {
         Ridge::Fixed(a) => a,
         // The ridge does not change score-only methods: nothing to choose.
@@ -154,6 +214,13 @@ pub fn solve_layer(
     let what = pruned.weight;
     let rel_error = objective::relative_error(w, what.as_ref(), h, par);
     let rel_error_holdout = held.map(|hh| objective::relative_error(w, what.as_ref(), hh, par));
+    if rel_error.is_nan() {
+        eprintln!(
+            "lopper: note: layer '{}': its dense outputs on the calibration rows are all zero \
+             (zero inputs or weights), so its relative error is undefined (null in the report)",
+            crate::io::escape(name)
+        );
+    }
     let mut values = Vec::with_capacity(d_out * d_in);
     for r in 0..d_out {
         for c in 0..d_in {

@@ -38,6 +38,25 @@ use faer::Par;
 use std::path::PathBuf;
 use std::time::Instant;
 
+/// Run `write` (an output that copies from `model`'s memory-mapped files)
+/// after checking that the model's files did not change during the run;
+/// when the write fails and an input changed meanwhile (a truncated input
+/// makes the copy fail with "Bad address"), the input is reported, not the
+/// output.
+///
+/// # Errors
+/// The changed input ([`crate::error::ErrorKind::Input`]) or the write error.
+pub(crate) fn write_checked<T>(
+    model: &Model,
+    write: impl FnOnce() -> std::result::Result<T, crate::io::WriteError>,
+) -> Result<T> {
+    model.check_unchanged()?;
+    write().map_err(|e| match model.check_unchanged() {
+        Err(changed) => Error::from(changed),
+        Ok(()) => Error::from(e),
+    })
+}
+
 /// What every run of a job shares: the model, the calibration, and how
 /// each layer is solved apart from its method and target.
 #[derive(Clone, Debug)]

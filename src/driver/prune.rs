@@ -120,6 +120,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         Calibration::Text(_) => None,
     };
     let settings = Settings {
+        model_fingerprint: Some(model.fingerprint()),
         method: cfg.target.method.to_string(),
         sparsity: pattern.sparsity(),
         pattern: pattern.sparsity().is_none().then(|| pattern.to_string()),
@@ -134,14 +135,16 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     };
     let meta = model_meta(job, cfg.target, sink.layers.len());
     let (written, structure) = if sink.cuts.is_empty() {
-        (io::write_model(&model, &cfg.output, &sink.replaced, &meta)?, None)
+        let write = || io::write_model(&model, &cfg.output, &sink.replaced, &meta);
+        (super::write_checked(&model, write)?, None)
     } else {
         let small = shrink(&model, &sink.replaced, &sink.cuts)?;
         let mut config = serde_json::to_vec_pretty(&small.config).expect("JSON serialises");
         config.push(b'\n');
         let files = BTreeMap::from([("config.json".to_string(), config)]);
         let edits = io::Edits { replaced: &small.values, reshaped: &small.shapes, files: &files };
-        let written = io::write_model_edited(&model, &cfg.output, &edits, &meta)?;
+        let write = || io::write_model_edited(&model, &cfg.output, &edits, &meta);
+        let written = super::write_checked(&model, write)?;
         let report = StructureReport {
             units: sink.cuts.iter().map(|c| c.report.clone()).collect(),
             params_before: small.params_before,

@@ -76,6 +76,8 @@ pub struct TensorFile {
     /// Indices into `infos`, sorted by data offset (file order).
     by_offset: Vec<usize>,
     metadata: Option<HashMap<String, String>>,
+    /// Modification time when opened (to notice a file changed under us).
+    modified: Option<std::time::SystemTime>,
 }
 
 /// One header entry before the cross-tensor checks.
@@ -93,6 +95,7 @@ impl TensorFile {
     /// [`K::OffsetsOutOfBounds`], [`K::OffsetsOutOfOrder`],
     /// [`K::TrailingData`]; each names `path` and, where relevant, the tensor.
     pub fn open(path: &Path) -> Result<Self, LoadError> {
+        super::check_regular(path)?;
         let file = File::open(path).map_err(|e| LoadError::io(path, "open", e))?;
         let meta = file.metadata().map_err(|e| LoadError::io(path, "stat", e))?;
         if meta.is_dir() {
@@ -128,7 +131,37 @@ impl TensorFile {
             spans,
             by_offset,
             metadata,
+            modified: meta.modified().ok(),
         })
+    }
+
+    /// Check that the file still has the size and modification time it had
+    /// when opened. The data is memory-mapped, so a file truncated or
+    /// rewritten in place during a run would otherwise surface as a failed
+    /// (or wrong) copy into the output.
+    ///
+    /// # Errors
+    /// [`K::Truncated`] naming the file, its size then and now.
+    pub fn check_unchanged(&self) -> Result<(), LoadError> {
+        let then = self.mmap.len() as u64;
+        let changed = |now: String| {
+            LoadError::new(
+                &self.path,
+                K::Truncated,
+                format!(
+                    "the input changed while lopper was running ({then} bytes when opened, {now}); \
+                     rerun on a copy that nothing else writes to"
+                ),
+            )
+        };
+        let meta = std::fs::metadata(&self.path).map_err(|e| changed(format!("now {e}")))?;
+        if meta.len() != then {
+            return Err(changed(format!("{} bytes now", meta.len())));
+        }
+        if meta.modified().ok() != self.modified {
+            return Err(changed("modified since".into()));
+        }
+        Ok(())
     }
 
     /// The path the file was opened with.
@@ -326,6 +359,22 @@ fn borrow_f32(dtype: Dtype, bytes: &[u8]) -> Option<&[f32]> {
 
 type Parsed = (usize, Vec<Entry>, Option<HashMap<String, String>>);
 
+/// [`parse`] on any bytes (the fuzz entry point): the length checks of
+/// [`TensorFile::open`], then the header; returns the number of tensors.
+pub(crate) fn parse_bytes(path: &Path, buf: &[u8]) -> Result<usize, LoadError> {
+    if buf.len() < 8 {
+        return Err(LoadError::new(
+            path,
+            K::Truncated,
+            format!(
+                "file is truncated: {} bytes, shorter than the 8-byte header length",
+                buf.len()
+            ),
+        ));
+    }
+    parse(path, buf).map(|(_, entries, _)| entries.len())
+}
+
 /// Parse and validate the header of the file mapped in `buf`.
 fn parse(path: &Path, buf: &[u8]) -> Result<Parsed, LoadError> {
     let err = |kind, detail: String| LoadError::new(path, kind, detail);
@@ -361,6 +410,15 @@ fn parse(path: &Path, buf: &[u8]) -> Result<Parsed, LoadError> {
     let Value::Object(map) = root else {
         return Err(err(K::BadHeader, "header is JSON but not an object".into()));
     };
+    // A JSON object keeps the last of repeated keys: count them first, so a
+    // repeated tensor name is named as such (not as a gap in the offsets).
+    if let Some(dup) = first_duplicate_key(text) {
+        return Err(err(
+            K::BadHeader,
+            format!("tensor name '{}' appears more than once in the header", super::escape(&dup)),
+        )
+        .tensor(&dup));
+    }
 
     let mut metadata = None;
     let mut entries = Vec::with_capacity(map.len());
@@ -373,6 +431,32 @@ fn parse(path: &Path, buf: &[u8]) -> Result<Parsed, LoadError> {
     }
     check_layout(path, &entries, buf.len() - header_end, file_len)?;
     Ok((header_end, entries, metadata))
+}
+
+/// The first top-level key of the JSON object `text` that repeats an
+/// earlier one (`None` when every key is distinct or `text` is not an
+/// object).
+fn first_duplicate_key(text: &str) -> Option<String> {
+    use serde::de::{Deserializer as _, IgnoredAny, MapAccess, Visitor};
+    struct Keys;
+    impl<'de> Visitor<'de> for Keys {
+        type Value = Option<String>;
+        fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+            f.write_str("a JSON object")
+        }
+        fn visit_map<A: MapAccess<'de>>(self, mut a: A) -> Result<Self::Value, A::Error> {
+            let mut seen = std::collections::HashSet::new();
+            let mut dup = None;
+            while let Some(k) = a.next_key::<String>()? {
+                a.next_value::<IgnoredAny>()?;
+                if dup.is_none() && !seen.insert(k.clone()) {
+                    dup = Some(k);
+                }
+            }
+            Ok(dup)
+        }
+    }
+    serde_json::Deserializer::from_str(text).deserialize_map(Keys).ok().flatten()
 }
 
 fn parse_metadata(path: &Path, value: &Value) -> Result<HashMap<String, String>, LoadError> {
@@ -670,6 +754,20 @@ pub(crate) mod tests {
         let e = open_err(&dir, "huge.safetensors", &raw(&header, &[0; 4]));
         assert_eq!(e.kind(), K::Truncated);
         assert!(e.to_string().contains(&format!("need {} bytes", u64::MAX)), "{e}");
+    }
+
+    #[test]
+    fn duplicate_tensor_names_are_named_as_duplicates() {
+        // JSON keeps the last of two equal keys; the first tensor's bytes
+        // would then look like a gap. The message names the duplicate.
+        let dir = TestDir::new("file-dup");
+        let header = r#"{"w":{"dtype":"F32","shape":[2],"data_offsets":[0,8]},"w":{"dtype":"F32","shape":[2],"data_offsets":[8,16]}}"#;
+        let e = open_err(&dir, "dup.safetensors", &raw(header, &[0; 16]));
+        assert_eq!(e.kind(), K::BadHeader);
+        assert_eq!(e.tensor_name(), Some("w"));
+        let m = e.to_string();
+        assert!(m.contains("'w' appears more than once"), "{m}");
+        assert!(!m.contains("gap"), "{m}");
     }
 
     #[test]

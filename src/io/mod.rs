@@ -38,6 +38,66 @@ use std::fmt;
 use std::path::{Path, PathBuf};
 
 pub use file::{TensorFile, TensorInfo};
+
+/// Refuse a path that exists but is not a regular file or a folder: a FIFO,
+/// socket or device could block a read forever or never end. A missing
+/// path passes (the open that follows names it).
+///
+/// # Errors
+/// [`LoadErrorKind::Io`] naming the path.
+pub fn check_regular(path: &Path) -> Result<(), LoadError> {
+    match std::fs::metadata(path) {
+        Ok(m) if !m.is_file() && !m.is_dir() => Err(LoadError::new(
+            path,
+            LoadErrorKind::Io,
+            "is not a regular file (a FIFO, socket or device); lopper reads only regular files",
+        )),
+        _ => Ok(()),
+    }
+}
+
+/// In-memory entry points of the readers, for the fuzz targets
+/// (`tests/fuzz.rs`, `benches/fuzz.rs`): each parses and validates `bytes`
+/// as if read from `path` and returns the number of entries.
+#[doc(hidden)]
+pub mod fuzz {
+    use super::LoadError;
+    use std::path::Path;
+
+    /// A `.safetensors` file: header length, header JSON and layout.
+    pub fn safetensors(path: &Path, bytes: &[u8]) -> Result<usize, LoadError> {
+        super::file::parse_bytes(path, bytes)
+    }
+
+    /// A `*.safetensors.index.json` shard index.
+    pub fn shard_index(path: &Path, bytes: &[u8]) -> Result<usize, LoadError> {
+        super::model::parse_index(path, bytes).map(|m| m.len())
+    }
+
+    /// A `.sprig` pack.
+    pub fn sprig(path: &Path, bytes: &[u8]) -> Result<usize, LoadError> {
+        super::pack::parse(path, bytes).map(|l| l.len())
+    }
+}
+
+/// `text` with control characters (newlines, escapes, NUL, …) written as
+/// `\u{..}` escapes, for printing names that come from input files (a
+/// tensor name may hold any UTF-8): messages stay one line and a terminal
+/// never receives raw control bytes.
+pub fn escape(text: &str) -> std::borrow::Cow<'_, str> {
+    if !text.chars().any(char::is_control) {
+        return std::borrow::Cow::Borrowed(text);
+    }
+    let mut out = String::with_capacity(text.len() + 8);
+    for c in text.chars() {
+        if c.is_control() {
+            out.push_str(&format!("\\u{{{:x}}}", c as u32));
+        } else {
+            out.push(c);
+        }
+    }
+    std::borrow::Cow::Owned(out)
+}
 pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;

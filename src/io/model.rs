@@ -88,6 +88,7 @@ impl Model {
     /// [`K::BadIndex`], [`K::MissingShard`], [`K::MissingTensor`],
     /// [`K::DuplicateTensor`] for an inconsistent shard set.
     pub fn open(path: &Path) -> Result<Self, LoadError> {
+        super::check_regular(path)?;
         let meta = std::fs::metadata(path).map_err(|e| LoadError::io(path, "open", e))?;
         if meta.is_dir() {
             return open_dir(path);
@@ -98,6 +99,39 @@ impl Model {
         let file = TensorFile::open(path)?;
         let names = file.tensors().iter().map(|t| (t.name.clone(), 0)).collect();
         Ok(Model { layout: Layout::File(path.to_owned()), files: vec![file], names })
+    }
+
+    /// A fingerprint of the model's contents as its headers describe them:
+    /// 16 hex digits of an FNV-1a hash over every tensor's name, dtype, shape
+    /// and byte length, in name order. Two models with the same tensors and
+    /// shapes but other file names get the same fingerprint; two different
+    /// models stored under the same file name do not.
+    pub fn fingerprint(&self) -> String {
+        let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+        let mut eat = |bytes: &[u8]| {
+            for &b in bytes {
+                h ^= u64::from(b);
+                h = h.wrapping_mul(0x0000_0100_0000_01b3);
+            }
+        };
+        for t in self.tensors() {
+            eat(t.name.as_bytes());
+            eat(&[0]);
+            eat(format!("{:?}", t.dtype).as_bytes());
+            for d in &t.shape {
+                eat(&(*d as u64).to_le_bytes());
+            }
+            eat(&[0xff]);
+        }
+        format!("{h:016x}")
+    }
+
+    /// Check every file of the model with [`TensorFile::check_unchanged`].
+    ///
+    /// # Errors
+    /// The first file that changed since it was opened.
+    pub fn check_unchanged(&self) -> Result<(), LoadError> {
+        self.files.iter().try_for_each(TensorFile::check_unchanged)
     }
 
     /// How the model is stored.
@@ -269,10 +303,19 @@ fn open_dir(dir: &Path) -> Result<Model, LoadError> {
 
 /// Parse the index's `weight_map` into tensor → shard file name.
 fn read_index(index: &Path) -> Result<BTreeMap<String, String>, LoadError> {
-    let bad = |d: String| LoadError::new(index, K::BadIndex, d);
+    super::check_regular(index)?;
     let text = std::fs::read(index).map_err(|e| LoadError::io(index, "read", e))?;
+    parse_index(index, &text)
+}
+
+/// [`read_index`] on the index's bytes.
+pub(crate) fn parse_index(
+    index: &Path,
+    text: &[u8],
+) -> Result<BTreeMap<String, String>, LoadError> {
+    let bad = |d: String| LoadError::new(index, K::BadIndex, d);
     let root: Value =
-        serde_json::from_slice(&text).map_err(|e| bad(format!("shard index is not JSON: {e}")))?;
+        serde_json::from_slice(text).map_err(|e| bad(format!("shard index is not JSON: {e}")))?;
     let Some(Value::Object(map)) = root.get("weight_map") else {
         return Err(bad("shard index has no \"weight_map\" object".into()));
     };

@@ -217,6 +217,7 @@ fn u64_at(b: &[u8], at: usize) -> u64 {
 /// [`K::InvalidPackedLayer`] naming the layer whose contents break the
 /// layout's rules.
 pub fn read_pack(path: &Path) -> Result<Vec<PackedLayer>, LoadError> {
+    super::check_regular(path)?;
     let file = File::open(path).map_err(|e| LoadError::io(path, "open", e))?;
     let meta = file.metadata().map_err(|e| LoadError::io(path, "stat", e))?;
     if meta.is_dir() {
@@ -230,7 +231,7 @@ pub fn read_pack(path: &Path) -> Result<Vec<PackedLayer>, LoadError> {
     parse(path, &map)
 }
 
-fn parse(path: &Path, b: &[u8]) -> Result<Vec<PackedLayer>, LoadError> {
+pub(crate) fn parse(path: &Path, b: &[u8]) -> Result<Vec<PackedLayer>, LoadError> {
     let err = |kind, d: String| LoadError::new(path, kind, d);
     if b.len() < 8 || b[..8] != SPRIG_MAGIC {
         return Err(err(

@@ -15,6 +15,14 @@ pub const VALIDATION_NOTICE: &str =
     "Reconstruction error on calibration data does not show every way \
 a pruned model can get worse: validate it on your own evaluation data before deploying.";
 
+/// Read an `f64` that lopper may have written as `null`: serde_json writes
+/// NaN and the infinities as `null` (e.g. the sparsity of a zero-sized
+/// layer, an undefined relative error), and every report lopper writes must
+/// read back. `null` reads as NaN.
+pub(crate) fn f64_or_nan<'de, D: serde::Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+    Ok(Option::<f64>::deserialize(d)?.unwrap_or(f64::NAN))
+}
+
 /// How the run was set up.
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 pub struct Settings {
@@ -29,6 +37,7 @@ pub struct Settings {
     /// Ridge α (a number) or `"auto"`.
     pub ridge: serde_json::Value,
     /// Fraction of activation rows held out.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub holdout: f64,
     /// lopper version.
     pub tool_version: String,
@@ -41,6 +50,10 @@ pub struct Settings {
     pub text: Option<serde_json::Value>,
     /// Worker threads.
     pub threads: usize,
+    /// [`crate::io::Model::fingerprint`] of the model (absent in reports of
+    /// older versions).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub model_fingerprint: Option<String>,
 }
 
 /// One pruned layer.
@@ -55,24 +68,31 @@ pub struct LayerReport {
     /// `d_out · d_in`.
     pub total: usize,
     /// Achieved fraction of zeros.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub sparsity: f64,
     /// `‖XWᵀ − XŴᵀ‖²_F / ‖XWᵀ‖²_F` on calibration rows.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub rel_error: f64,
     /// The same on held-out rows (`null` without held-out rows).
     pub rel_error_holdout: Option<f64>,
     /// Wall-clock seconds for this layer (statistics + solve).
+    #[serde(deserialize_with = "f64_or_nan")]
     pub seconds: f64,
     /// Calibration rows the solver fitted.
     pub calibration_rows: usize,
     /// Held-out rows.
     pub holdout_rows: usize,
     /// Ridge α used for this layer.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub ridge_alpha: f64,
     /// Ridge λ = α · mean(diag(H)).
+    #[serde(deserialize_with = "f64_or_nan")]
     pub ridge_lambda: f64,
     /// Objective `Σ_r (w−ŵ)ᵀA(w−ŵ)` at the solver's start.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub objective_initial: f64,
     /// Objective at the end.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub objective_final: f64,
     /// Local-search sweeps (0 for one-shot methods).
     pub sweeps: usize,
@@ -92,12 +112,15 @@ pub struct Summary {
     /// Weights in all pruned layers.
     pub total: usize,
     /// Overall fraction of zeros in the pruned layers.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub sparsity: f64,
     /// Mean of `rel_error` over layers.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub mean_rel_error: f64,
     /// Mean of `rel_error_holdout` over layers that have held-out rows.
     pub mean_rel_error_holdout: Option<f64>,
     /// Total wall-clock seconds.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub seconds: f64,
 }
 
@@ -145,20 +168,25 @@ pub struct UnitsReport {
     pub refit: bool,
     /// The consumer's `‖XWᵀ − XŴᵀ‖²/‖XWᵀ‖²` on calibration rows after the cut
     /// (before any unstructured pruning of what remains).
+    #[serde(deserialize_with = "f64_or_nan")]
     pub rel_error: f64,
     /// The same on held-out rows.
     pub rel_error_holdout: Option<f64>,
     /// Ridge α used.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub ridge_alpha: f64,
     /// Objective after the start (greedy removal for `l0`).
+    #[serde(deserialize_with = "f64_or_nan")]
     pub objective_start: f64,
     /// Objective at the end.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub objective: f64,
     /// Swap rounds.
     pub rounds: usize,
     /// Swaps accepted.
     pub swaps: usize,
     /// Seconds for the structured solve.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub seconds: f64,
 }
 
@@ -179,12 +207,16 @@ pub struct StructureReport {
 #[derive(Clone, Copy, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct PhaseTimes {
     /// Tokenizing the text and drawing windows.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub tokenize: f64,
     /// Forward passes through the blocks (collecting and propagating).
+    #[serde(deserialize_with = "f64_or_nan")]
     pub forward: f64,
     /// Accumulating Gram matrices from the collected inputs.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub gram: f64,
     /// Solving the layers.
+    #[serde(deserialize_with = "f64_or_nan")]
     pub solve: f64,
 }
 
@@ -286,14 +318,18 @@ impl Summary {
     pub fn of(layers: &[LayerReport], seconds: f64) -> Self {
         let kept: usize = layers.iter().map(|l| l.kept).sum();
         let total: usize = layers.iter().map(|l| l.total).sum();
-        let n = layers.len().max(1) as f64;
-        let held: Vec<f64> = layers.iter().filter_map(|l| l.rel_error_holdout).collect();
+        // Undefined errors (NaN: a layer whose dense outputs are all zero)
+        // are left out of the means.
+        let calib: Vec<f64> = layers.iter().map(|l| l.rel_error).filter(|e| !e.is_nan()).collect();
+        let n = calib.len().max(1) as f64;
+        let held: Vec<f64> =
+            layers.iter().filter_map(|l| l.rel_error_holdout).filter(|e| !e.is_nan()).collect();
         Summary {
             layers: layers.len(),
             kept,
             total,
             sparsity: if total > 0 { 1.0 - kept as f64 / total as f64 } else { 0.0 },
-            mean_rel_error: layers.iter().map(|l| l.rel_error).sum::<f64>() / n,
+            mean_rel_error: calib.iter().sum::<f64>() / n,
             mean_rel_error_holdout: (!held.is_empty())
                 .then(|| held.iter().sum::<f64>() / held.len() as f64),
             seconds,
@@ -304,6 +340,7 @@ impl Summary {
 fn fmt_err(x: Option<f64>) -> String {
     match x {
         Some(v) if v.is_finite() => format!("{v:.4e}"),
+        Some(v) if v.is_nan() => "undefined".to_string(),
         Some(v) => format!("{v}"),
         None => "-".to_string(),
     }
@@ -328,7 +365,13 @@ impl Report {
             "lopper {} | method {} | {target} | ridge {ridge}",
             s.tool_version, s.method
         );
-        let wname = self.layers.iter().map(|l| l.name.len()).max().unwrap_or(5).max(5);
+        let wname = self
+            .layers
+            .iter()
+            .map(|l| crate::io::escape(&l.name).chars().count())
+            .max()
+            .unwrap_or(5)
+            .max(5);
         // The local search's counters only mean something for it.
         let search = s.method == "l0";
         let mut head = format!(
@@ -345,7 +388,7 @@ impl Report {
         for l in &self.layers {
             let mut row = format!(
                 "{:<wname$}  {:>11}  {:>17}  {:>7.2}%  {:>11}  {:>11}  {:>6}",
-                l.name,
+                crate::io::escape(&l.name),
                 format!("{}x{}", l.shape[0], l.shape[1]),
                 format!("{}/{}", l.kept, l.total),
                 100.0 * l.sparsity,
@@ -448,6 +491,7 @@ mod tests {
                 activations: Some("a".into()),
                 text: None,
                 threads: 1,
+                model_fingerprint: None,
             },
             summary: Summary::of(&layers, 1.0),
             layers,
@@ -467,5 +511,67 @@ mod tests {
         assert_eq!(v["settings"]["method"], "obs");
         let t = r.render_table();
         assert!(t.contains("50.00%") && t.contains("1.0000e-1"), "{t}");
+    }
+
+    #[test]
+    fn every_report_lopper_writes_reads_back() {
+        // A [0, 384] layer has sparsity 0/0 and an all-zero layer an
+        // undefined error: NaN, which serde_json writes as null. The
+        // reader of `lopper report` must take the file back.
+        let mut empty = layer("empty", 0, f64::NAN, Some(f64::NAN));
+        empty.shape = [0, 384];
+        empty.total = 0;
+        empty.sparsity = f64::NAN;
+        empty.objective_initial = f64::INFINITY;
+        let layers = vec![layer("a", 10, 0.1, Some(0.2)), empty];
+        let r = Report {
+            structure: None,
+            settings: Settings {
+                method: "obs".into(),
+                sparsity: Some(0.5),
+                pattern: None,
+                scope: "row".into(),
+                ridge: serde_json::json!(0.01),
+                holdout: 0.1,
+                tool_version: "0".into(),
+                model: "m".into(),
+                activations: Some("a".into()),
+                text: None,
+                threads: 1,
+                model_fingerprint: Some("0123456789abcdef".into()),
+            },
+            summary: Summary::of(&layers, 1.0),
+            layers,
+            outputs: vec![],
+            timing: Some(PhaseTimes { tokenize: f64::NAN, ..PhaseTimes::default() }),
+            eval: None,
+            notice: VALIDATION_NOTICE.into(),
+        };
+        let json = r.to_json();
+        assert!(json.contains("\"sparsity\": null"), "{json}");
+        // The summary leaves the undefined error out of the mean.
+        assert!((r.summary.mean_rel_error - 0.1).abs() < 1e-15);
+        let dir = std::env::temp_dir().join(format!("lopper-report-rt-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join("r.json");
+        std::fs::write(&path, &json).unwrap();
+        let back = crate::compare::data::load(&path);
+        let _ = std::fs::remove_dir_all(&dir);
+        let back = back.expect("lopper reads its own report");
+        let run = &back.comparison.runs[0];
+        assert_eq!(run.layers.len(), 2);
+        assert!(run.layers[1].sparsity.is_nan() && run.layers[1].rel_error.is_nan());
+        assert_eq!(run.layers[1].rel_error_holdout, None);
+        assert_eq!(run.layers[0], r.layers[0]);
+        assert_eq!(back.comparison.model_fingerprint.as_deref(), Some("0123456789abcdef"));
+        // And a comparison.json written from it reads back too.
+        let again: crate::compare::data::Comparison =
+            serde_json::from_str(&back.comparison.to_json()).unwrap();
+        assert!(again.runs[0].layers[1].sparsity.is_nan());
+        // Reports without a fingerprint (older versions) still read.
+        let mut old: serde_json::Value = serde_json::from_str(&json).unwrap();
+        old["settings"].as_object_mut().unwrap().remove("model_fingerprint").unwrap();
+        let r2: Report = serde_json::from_value(old).unwrap();
+        assert_eq!(r2.settings.model_fingerprint, None);
     }
 }

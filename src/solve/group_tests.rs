@@ -329,8 +329,8 @@ fn edge_cases() {
         assert_eq!(s.weight.norm_max(), 0.0);
     }
     // Dead inputs: columns 4 and 5 (group 2 of width 2) never fire, so H has
-    // zero rows/columns there; A stays PD through `regularised`'s unit
-    // diagonal. With zero weights on them, group 2 costs nothing to remove
+    // zero rows/columns there; A stays PD through `regularised`'s small
+    // diagonal for dead inputs. With zero weights on them, group 2 costs nothing to remove
     // and Greedy and Swap remove it when one group goes.
     let mut hd = h.clone();
     for j in [4, 5] {

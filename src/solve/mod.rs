@@ -278,16 +278,30 @@ pub fn ridge_lambda(h: MatRef<'_, f64>, alpha: f64) -> f64 {
     }
 }
 
-/// `A = H + λ I`, with dead inputs (`H_jj = 0`) given a unit diagonal so that
-/// `A` is invertible even when `λ = 0`. A dead input never changes the output,
-/// so this only fixes the value the solver assigns to its weight.
+/// `A = H + λ I`. A dead input (`H_jj = 0`, an all-zero input column) never
+/// changes the output, so pruning its weight costs only the ridge term
+/// `λ (w − ŵ)²`, which is exactly what `A_jj = λ` charges; with `λ = 0` it
+/// gets a tiny diagonal instead (`1e-12 · mean(diag H)`), so that `A` stays
+/// invertible and its weight is pruned first, at practically no cost.
 pub fn regularised(h: MatRef<'_, f64>, lambda: f64) -> Mat<f64> {
     let mut a = h.to_owned();
-    for j in 0..a.nrows() {
-        if a[(j, j)] == 0.0 {
-            a[(j, j)] = 1.0;
+    let n = a.nrows();
+    let dead = if lambda > 0.0 {
+        lambda
+    } else {
+        let mean = (0..n).map(|j| h[(j, j)]).sum::<f64>() / n.max(1) as f64;
+        if mean > 0.0 && mean.is_finite() {
+            1e-12 * mean
+        } else {
+            1e-12
         }
-        a[(j, j)] += lambda;
+    };
+    for j in 0..n {
+        if a[(j, j)] == 0.0 {
+            a[(j, j)] = dead;
+        } else {
+            a[(j, j)] += lambda;
+        }
     }
     a
 }
@@ -411,6 +425,48 @@ mod tests {
         let err = prune_layer(w.as_ref(), h.as_ref(), &params, Par::Seq).unwrap_err();
         assert_eq!(err, SolveError::NotPositiveDefinite { lambda: 0.0, row: None });
         assert!(err.to_string().contains("λ=0.000e0"), "{err}");
+    }
+
+    #[test]
+    fn dead_inputs_are_free_to_prune() {
+        // Input 0 never fires (its column of X is zero, so is row/column 0
+        // of H); inputs 1..3 are independent with H = I on them. Pruning
+        // the dead weight changes no output, so with --ridge 0 at 25% per
+        // row every method that reads H must prune it, however large it is,
+        // and the error on the calibration rows is zero; this needs A to
+        // stay invertible (A_00 > 0). With λ > 0 pruning it costs λ·w², the
+        // ridge term of the objective, and nothing more (A_00 = λ; it was
+        // 1 + λ, a cost unrelated to the objective).
+        let h = faer::mat![
+            [0.0, 0.0, 0.0, 0.0],
+            [0.0, 1.0, 0.0, 0.0],
+            [0.0, 0.0, 1.0, 0.0],
+            [0.0, 0.0, 0.0, 1.0],
+        ];
+        let w = faer::mat![[10.0, 1.0, -1.0, 0.5], [-8.0, 0.25, 2.0, 1.0]];
+        let a = regularised(h.as_ref(), 0.0075);
+        assert_eq!(a[(0, 0)], 0.0075);
+        assert_eq!(a[(1, 1)], 1.0075);
+        let a0 = regularised(h.as_ref(), 0.0)[(0, 0)];
+        assert!(a0 > 0.0 && a0 < 1e-9, "{a0}");
+        let alpha = 0.0;
+        for method in [Method::Obs, Method::L0] {
+            let params = SolveParams {
+                method,
+                pattern: Pattern::Unstructured { sparsity: 0.25, scope: Scope::Row },
+                ridge_alpha: alpha,
+                ..SolveParams::default()
+            };
+            let p = prune_layer(w.as_ref(), h.as_ref(), &params, Par::Seq).unwrap();
+            for r in 0..2 {
+                assert_eq!(p.weight[(r, 0)], 0.0, "{method:?} α={alpha} row {r}");
+                for c in 1..4 {
+                    assert!((p.weight[(r, c)] - w[(r, c)]).abs() < 1e-9, "{method:?}");
+                }
+            }
+            let e = objective::relative_error(w.as_ref(), p.weight.as_ref(), h.as_ref(), Par::Seq);
+            assert!(e < 1e-12, "{method:?} α={alpha}: {e}");
+        }
     }
 
     #[test]

@@ -41,7 +41,8 @@ pub fn relative_error(
     } else if num > 0.0 {
         f64::INFINITY
     } else {
-        0.0
+        // Dense outputs all zero: 0/0, the relative error is undefined.
+        f64::NAN
     }
 }
 

@@ -49,6 +49,18 @@ impl<'m> Activations<'m> {
         let selected: Vec<_> = all
             .into_iter()
             .filter(|t| params.selection.selects(&t.name, &t.shape, t.is_float()))
+            .filter(|t| {
+                // A zero-sized layer has nothing to prune (and no Gram matrix).
+                let empty = t.shape.contains(&0);
+                if empty {
+                    eprintln!(
+                        "lopper: note: skipping zero-sized layer '{}' {:?}: nothing to prune",
+                        crate::io::escape(&t.name),
+                        t.shape
+                    );
+                }
+                !empty
+            })
             .collect();
         if selected.is_empty() {
             return Err(Error::usage(format!(

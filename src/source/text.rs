@@ -153,6 +153,9 @@ pub fn windows(
         .with_path(&src.path));
     }
     let starts = draw_windows(ids.len(), samples, content, src.seed);
+    if let Some(note) = overlap_note(ids.len(), samples, content) {
+        eprintln!("lopper: note: {shown}: {note}");
+    }
     let wins = starts.iter().map(|&s| framing.frame(&ids[s..s + content])).collect();
     Ok((wins, ids.len()))
 }
@@ -328,5 +331,39 @@ impl LayerSource for TextCalibration {
 
     fn units(&self, b: usize) -> Vec<arch::units::Units> {
         self.net.units(b)
+    }
+}
+
+/// A note when `samples` windows of `content` tokens cover the `n_tokens`
+/// of the text many times over (each token in more than 4 windows on
+/// average): the windows then repeat the same text, and more of them add
+/// cost, not information.
+pub(crate) fn overlap_note(n_tokens: usize, samples: usize, content: usize) -> Option<String> {
+    let covered = samples as f64 * content as f64 / n_tokens.max(1) as f64;
+    (covered > 4.0).then(|| {
+        let distinct = n_tokens.div_ceil(content.max(1));
+        format!(
+            "--samples {samples} windows of {content} tokens cover its {n_tokens} tokens about \
+             {covered:.0} times over (about {distinct} windows would not overlap); the windows \
+             repeat the same text, so calibration costs more without more information"
+        )
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::overlap_note;
+
+    #[test]
+    fn many_overlapping_windows_get_a_note() {
+        // 100000 windows of 126 tokens on a 5000-token text: each token is
+        // in about 2520 windows.
+        let n = overlap_note(5000, 100_000, 126).expect("a note");
+        assert!(n.contains("--samples 100000") && n.contains("2520 times"), "{n}");
+        assert!(n.contains("about 40 windows"), "{n}");
+        // Four covers or fewer: no note.
+        assert_eq!(overlap_note(5000, 128, 126), None);
+        assert_eq!(overlap_note(5000, 158, 126), None);
+        assert!(overlap_note(5000, 200, 126).is_some());
     }
 }
