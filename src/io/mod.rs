@@ -41,7 +41,10 @@ pub use file::{TensorFile, TensorInfo};
 pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
-pub use write::{canonical_target, write_atomic, write_model, write_model_edited, Edits};
+pub use write::{
+    canonical_target, file_kind, folder_of, is_stream, model_targets, stage_model, write_atomic,
+    write_model, write_model_edited, Edits, Staged,
+};
 
 /// The accessors and the one-line `Display` (`path: tensor 'name': detail`)
 /// that [`LoadError`] and [`WriteError`] share: both name a file, maybe a
