@@ -95,6 +95,10 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     // Every output checked before any work: not an input, not each other,
     // not a special file, in a folder that takes new files.
     let inputs = input_files(&model, &read);
+    let mut outs = vec![("-o", cfg.output.as_path())];
+    outs.extend(cfg.report.as_deref().map(|p| ("--report", p)));
+    outs.extend(cfg.trace.as_deref().map(|p| ("--trace", p)));
+    check_distinct(&inputs, &outs)?;
     let model_files = check_model_output("-o", &model, &cfg.output, &inputs)?;
     let mut outs = vec![("-o", cfg.output.as_path())];
     if model_files.iter().all(|f| f != &cfg.output) {

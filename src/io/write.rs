@@ -1004,6 +1004,34 @@ mod tests {
     }
 
     #[test]
+    fn a_staged_set_commits_together_or_leaves_nothing() {
+        let d = TestDir::new("w-staged");
+        let (a, sub) = (d.join("a.txt"), d.join("new/deeper"));
+        {
+            let mut st = Staged::new();
+            st.file(&a, |w| w.write_all(b"a")).unwrap();
+            st.folder(&sub).unwrap();
+            st.file(&sub.join("b.txt"), |w| w.write_all(b"b")).unwrap();
+            let e = st.file(&d.join("c.txt"), |_| Err(std::io::Error::other("full"))).unwrap_err();
+            assert!(e.to_string().contains("c.txt: cannot write: full"), "{e}");
+            // Dropped without a commit: nothing new, no temporary.
+        }
+        assert_files(d.path(), &[]);
+        let mut st = Staged::new();
+        st.file(&a, |w| w.write_all(b"a")).unwrap();
+        st.folder(&sub).unwrap();
+        st.file(&sub.join("b.txt"), |w| w.write_all(b"b")).unwrap();
+        // Before the commit only hidden temporaries exist.
+        assert!(TestDir::list(d.path()).iter().all(|n| n.starts_with('.')));
+        assert_eq!(st.commit().unwrap(), [a.clone(), sub.join("b.txt")]);
+        assert_files(d.path(), &["a.txt", "new"]);
+        assert_eq!(std::fs::read(sub.join("b.txt")).unwrap(), b"b");
+        // A folder where a file is expected is refused.
+        let e = Staged::new().file(&sub, |_| Ok(())).unwrap_err();
+        assert_eq!(e.kind(), K::BadOutput);
+    }
+
+    #[test]
     fn write_atomic_cleans_up_on_error() {
         let d = TestDir::new("w-atomic");
         let p = d.join("x.bin");
