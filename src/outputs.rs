@@ -76,6 +76,9 @@ pub enum Write {
 pub fn check_file(flag: &str, path: &Path, how: Write) -> Result<()> {
     use std::os::unix::fs::FileTypeExt;
     let refuse = |what: String| Err(Error::usage(format!("{flag} {}: {what}", path.display())));
+    if how == Write::MayStream && crate::io::is_stream(path) {
+        return Ok(());
+    }
     match std::fs::metadata(path) {
         Ok(m) if m.is_file() => {}
         Ok(m)
@@ -122,6 +125,9 @@ pub fn check_dir(flag: &str, dir: &Path) -> Result<()> {
 fn check_folder(flag: &str, path: &Path, folder: &Path) -> Result<()> {
     static N: AtomicUsize = AtomicUsize::new(0);
     let refuse = |what: String| Err(Error::usage(format!("{flag} {}: {what}", path.display())));
+    if crate::io::in_system_dir(path) {
+        return refuse("is under /dev or /proc, where lopper creates and replaces no file".into());
+    }
     if !folder.is_dir() {
         return refuse(format!("the folder {} does not exist", folder.display()));
     }
@@ -178,10 +184,10 @@ pub fn check_model_output(
         }
         if let Ok(m) = std::fs::metadata(f) {
             if !m.is_file() {
+                let which = if f == out { String::new() } else { format!("{} ", f.display()) };
                 return Err(Error::usage(format!(
-                    "{flag} {}: {} is not a regular file ({}); lopper will not replace it",
+                    "{flag} {}: {which}is not a regular file ({}); lopper will not replace it",
                     out.display(),
-                    f.display(),
                     file_kind(&m)
                 ))
                 .with_path(f));

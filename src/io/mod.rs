@@ -42,8 +42,8 @@ pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
 pub use write::{
-    canonical_target, file_kind, folder_of, is_stream, model_targets, stage_model, write_atomic,
-    write_model, write_model_edited, Edits, Staged,
+    canonical_target, file_kind, folder_of, in_system_dir, is_stream, model_targets, stage_model,
+    write_atomic, write_model, write_model_edited, Edits, Staged,
 };
 
 /// The accessors and the one-line `Display` (`path: tensor 'name': detail`)

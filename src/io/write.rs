@@ -72,14 +72,22 @@ pub fn folder_of(path: &Path) -> &Path {
     }
 }
 
-/// Whether `path` is a character device or a FIFO (following links): an
-/// output that is written into directly rather than replaced.
+/// Whether `path` is a character device or a FIFO (following links), or
+/// an existing file under `/dev` or `/proc` (`/dev/stdout` redirected to a
+/// file): an output that is written into directly rather than replaced.
 pub fn is_stream(path: &Path) -> bool {
     use std::os::unix::fs::FileTypeExt;
     std::fs::metadata(path).is_ok_and(|m| {
         let t = m.file_type();
-        t.is_char_device() || t.is_fifo()
+        t.is_char_device() || t.is_fifo() || (m.is_file() && in_system_dir(path))
     })
+}
+
+/// Whether `path` (as given, or resolved) lies under `/dev` or `/proc`,
+/// where lopper never creates or replaces a file.
+pub fn in_system_dir(path: &Path) -> bool {
+    let sys = |p: &Path| p.starts_with("/dev") || p.starts_with("/proc");
+    sys(path) || sys(&canonical_target(path))
 }
 
 /// One staged output.
@@ -172,6 +180,13 @@ impl Staged {
                     if !m.is_file() {
                         return Err(not_regular(path, &m));
                     }
+                }
+                if in_system_dir(path) {
+                    return Err(WriteError::new(
+                        path,
+                        K::BadOutput,
+                        "is under /dev or /proc, where lopper creates and replaces no file",
+                    ));
                 }
                 let tmp = temp_beside(path)?;
                 (tmp.clone(), Some(Staging::Temp { tmp, target: path.to_owned() }))
