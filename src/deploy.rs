@@ -105,6 +105,7 @@ pub fn pack(
             ),
         ));
     }
+    crate::outputs::check_file("-o", out, crate::outputs::Write::Replace)?;
     let layers = pruned_layers(model, sel)?;
     if layers.is_empty() {
         return Err(no_layers(model));

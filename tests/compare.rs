@@ -380,13 +380,15 @@ fn compare_gives_the_figures_and_weights_of_prune() {
     assert!(models.iter().all(|m| !m.starts_with('.')), "{models:?}");
 }
 
-/// Ctrl-C (a real SIGINT) once the first checkpoint is written: exit code
-/// 130, files complete and parseable, finished solves kept, status
-/// `interrupted`, no temp files and no parked weights left.
-#[test]
-fn ctrl_c_keeps_what_finished() {
-    let dir = Scratch::new("cmp-int");
-    let (model, acts) = stack_model(&dir, 40, 160, 400);
+/// Stop a `compare --keep-models` of 40 layers x 6 runs with `signal` once
+/// the first checkpoint is written (and, with `twice`, again at once).
+/// Returns the output folder's record, the process output and the folder.
+fn stop_compare(
+    dir: &Scratch,
+    signal: &str,
+    twice: bool,
+) -> (Value, std::process::Output, PathBuf) {
+    let (model, acts) = stack_model(dir, 40, 160, 400);
     let out = dir.path("cmp");
     let mut child = Command::new(env!("CARGO_BIN_EXE_lopper"))
         .args([
@@ -413,36 +415,87 @@ fn ctrl_c_keeps_what_finished() {
         assert!(child.try_wait().unwrap().is_none(), "compare ended before the first checkpoint");
         std::thread::sleep(std::time::Duration::from_millis(50));
     }
-    let first = json(&json_path);
-    assert_eq!(first["status"], "running");
-    let kill = Command::new("kill").args(["-INT", &child.id().to_string()]).status().unwrap();
-    assert!(kill.success());
+    assert_eq!(json(&json_path)["status"], "running");
+    for _ in 0..(1 + usize::from(twice)) {
+        let kill = Command::new("kill").args([signal, &child.id().to_string()]).status().unwrap();
+        assert!(kill.success());
+    }
     let o = child.wait_with_output().unwrap();
-    let err = stderr(&o);
-    assert_eq!(o.status.code(), Some(130), "{err}");
-    assert!(err.contains("interrupted:") && err.contains("finished and are kept"), "{err}");
-    let c = json(&json_path);
-    assert_eq!(c["status"], "interrupted");
+    (json(&json_path), o, out)
+}
+
+/// What an interrupted `compare --keep-models` leaves: status
+/// `interrupted`, whole runs first (every complete run has its model, at
+/// most one partial run and no model for it), no temporary or hidden file.
+fn check_stopped(c: &Value, out: &Path) {
+    assert_eq!(c["status"], "interrupted", "{}", c["status_detail"]);
     let runs = c["runs"].as_array().unwrap();
     let done: usize = runs.iter().map(|r| r["layers"].as_array().unwrap().len()).sum();
-    let before: usize = first["runs"]
-        .as_array()
-        .unwrap()
+    assert!(done > 0 && done < 40 * 6, "{done} solves kept");
+    let complete: Vec<&Value> = runs.iter().filter(|r| r["complete"] == true).collect();
+    let partial = runs
         .iter()
-        .map(|r| r["layers"].as_array().unwrap().len())
-        .sum();
-    assert!(done >= before && done > 0 && done < 40 * 6, "{done} solves kept");
-    assert!(runs.iter().all(|r| r["complete"] == false && r["model_output"].is_null()));
+        .filter(|r| r["complete"] == false && !r["layers"].as_array().unwrap().is_empty());
+    assert!(partial.count() <= 1, "runs are solved one after another when models are kept");
+    for (k, r) in runs.iter().enumerate() {
+        let n = r["layers"].as_array().unwrap().len();
+        if r["complete"] == true {
+            assert_eq!(n, 40);
+            assert!(runs[..k].iter().all(|q| q["complete"] == true), "whole runs come first");
+            let m = PathBuf::from(r["model_output"].as_str().expect("a complete run has a model"));
+            assert!(m.is_file(), "{}", m.display());
+        } else {
+            assert!(r["model_output"].is_null());
+        }
+    }
     let html = std::fs::read_to_string(out.join("comparison.html")).unwrap();
     assert!(html.contains("incomplete") && html.trim_end().ends_with("</html>"));
-    // Neither temp files nor parked weights remain; no run finished, so no models.
-    let names: Vec<String> = std::fs::read_dir(&out)
+    // Neither temp files nor parked weights remain; models only for whole runs.
+    let mut names: Vec<String> = std::fs::read_dir(out)
         .unwrap()
         .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
         .collect();
-    let mut names = names;
     names.sort();
-    assert_eq!(names, ["comparison.html", "comparison.json"]);
+    let mut expect = vec!["comparison.html", "comparison.json"];
+    if !complete.is_empty() {
+        expect.push("models");
+        let mut kept: Vec<String> = std::fs::read_dir(out.join("models"))
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
+        kept.sort();
+        let mut ids: Vec<String> =
+            complete.iter().map(|r| r["id"].as_str().unwrap().to_string()).collect();
+        ids.sort();
+        assert_eq!(kept, ids, "only whole runs' models, nothing hidden");
+    }
+    assert_eq!(names, expect);
+}
+
+/// Ctrl-C (a real SIGINT) once the first checkpoint is written: exit code
+/// 130, every finished solve kept, whole runs kept with their models.
+#[test]
+fn ctrl_c_keeps_what_finished() {
+    let dir = Scratch::new("cmp-int");
+    let (c, o, out) = stop_compare(&dir, "-INT", false);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(130), "{err}");
+    assert!(err.contains("interrupted:") && err.contains("finished and are kept"), "{err}");
+    check_stopped(&c, &out);
+}
+
+/// SIGTERM is handled like Ctrl-C; two in a row stop at once, and the
+/// record still says `interrupted`, with no hidden files left.
+#[test]
+fn sigterm_is_handled_like_ctrl_c() {
+    let dir = Scratch::new("cmp-term");
+    let (c, o, out) = stop_compare(&dir, "-TERM", false);
+    assert_eq!(o.status.code(), Some(130), "{}", stderr(&o));
+    check_stopped(&c, &out);
+    let dir = Scratch::new("cmp-term2");
+    let (c, o, out) = stop_compare(&dir, "-TERM", true);
+    assert_eq!(o.status.code(), Some(130), "{}", stderr(&o));
+    check_stopped(&c, &out);
 }
 
 /// Saved reports side by side: two prune reports and a comparison.json of

@@ -207,33 +207,57 @@ fn a_solve_failure_exits_1_and_names_the_layer_in_every_command() {
     assert!(c["status_detail"].as_str().unwrap().contains("enc.0.weight"), "{c}");
 }
 
+/// A write that fails after the work exits 1 and leaves nothing new: the
+/// report goes to /dev/full (through a link, so no root is needed and the
+/// device is never at risk). An output folder that does not exist is found
+/// before any work instead, exit 2, in every command that writes files.
 #[test]
 fn an_output_failure_exits_1_in_every_command() {
     let dir = Scratch::new("err-output");
     let (m, a) = small_model(&dir);
     let (m, a) = (s(&m).to_string(), s(&a).to_string());
-    let nodir = dir.path("no-such-folder");
     let r = report_of(&dir, &m, &a);
-    let out = nodir.join("out.safetensors");
+    let full = dir.path("full");
+    std::os::unix::fs::symlink("/dev/full", &full).unwrap();
+    let out = dir.path("out.safetensors");
     expect(
         &dir,
-        &["prune", &m, "--activations", &a, "--sparsity", "0.5", "-o", s(&out)],
+        &[
+            "prune",
+            &m,
+            "--activations",
+            &a,
+            "--sparsity",
+            "0.5",
+            "-o",
+            s(&out),
+            "--report",
+            s(&full),
+        ],
         1,
-        &["no-such-folder"],
+        &["--report", "full", "cannot write"],
+        &[],
+    );
+    let nodir = dir.path("no-such-folder");
+    expect(
+        &dir,
+        &["prune", &m, "--activations", &a, "--sparsity", "0.5", "-o", s(&nodir.join("o.st"))],
+        2,
+        &["-o", "no-such-folder", "does not exist"],
         &[],
     );
     expect(
         &dir,
         &["report", s(&r), "-o", s(&nodir.join("page.html"))],
-        1,
-        &["no-such-folder"],
+        2,
+        &["-o", "no-such-folder"],
         &[],
     );
     expect(
         &dir,
         &["pack", s(&dir.path("p.safetensors")), "-o", s(&nodir.join("m.sprig"))],
-        1,
-        &["no-such-folder"],
+        2,
+        &["-o", "no-such-folder"],
         &[],
     );
 }

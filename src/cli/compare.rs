@@ -1,9 +1,10 @@
 //! `lopper compare` and `lopper report`: flag validation, the progress bar,
 //! Ctrl-C handling and printing. The work is in [`crate::compare`].
 //!
-//! Ctrl-C once asks the driver to stop after the current solve and write
-//! what finished (exit code 130); a second Ctrl-C exits at once, after any
-//! file write in progress, removing parked weights.
+//! Ctrl-C or SIGTERM (or SIGHUP) once asks the driver to stop after the
+//! current solve and write what finished (exit code 130); a second signal
+//! exits at once, after any file write in progress, marking the last
+//! checkpoint `interrupted`.
 
 use super::args::{CompareArgs, ReportArgs};
 use super::config::{compare_config, focus_key};
@@ -29,6 +30,7 @@ pub(super) fn compare(a: &CompareArgs) -> Result<(), Failure> {
     let control = Arc::new(Control::default());
     {
         let (c, b) = (Arc::clone(&control), bar.clone());
+        let out_dir = cfg.out_dir.clone();
         // Only one handler per process; a second `set_handler` (never in
         // this binary) would fail and leave Ctrl-C to end the process.
         let _ = ctrlc::set_handler(move || {
@@ -41,7 +43,7 @@ pub(super) fn compare(a: &CompareArgs) -> Result<(), Failure> {
                 });
             } else {
                 let _writing = c.writing.lock().unwrap_or_else(|e| e.into_inner());
-                c.remove_scratch();
+                compare::mark_stopped(&out_dir);
                 b.abandon();
                 eprintln!("lopper: stopped at once; comparison.json holds the last checkpoint");
                 std::process::exit(EXIT_INTERRUPTED);
@@ -55,6 +57,11 @@ pub(super) fn compare(a: &CompareArgs) -> Result<(), Failure> {
         Progress::Done(k) => bar.set_position(k as u64),
         Progress::Evaluating => bar.set_message("comparing with the dense model on --eval-text"),
         Progress::Writing => bar.set_message("writing models"),
+        Progress::Note(n) => {
+            if !a.job.run.quiet {
+                bar.suspend(|| eprintln!("lopper: {n}"));
+            }
+        }
     };
     let outcome = compare::compare(&cfg, &on_progress, &control);
     bar.finish_and_clear();
@@ -83,6 +90,9 @@ pub(super) fn report(a: &ReportArgs) -> Result<()> {
     let inputs: Vec<std::path::PathBuf> =
         a.reports.iter().map(|p| crate::io::canonical_target(p)).collect();
     crate::outputs::check_distinct(&inputs, &[("-o", a.output.as_path())])?;
+    if !a.output.is_dir() {
+        crate::outputs::check_file("-o", &a.output, crate::outputs::Write::Replace)?;
+    }
     let mut sources: Vec<Source> = Vec::new();
     for p in &a.reports {
         sources.push(data::load(p).map_err(|m| Error::input(m).with_path(p))?);

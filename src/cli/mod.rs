@@ -106,6 +106,11 @@ fn prune(a: &args::PruneArgs) -> Result<()> {
             bar.set_position(bar.length().unwrap_or(0));
             bar.set_message("writing outputs");
         }
+        Progress::Note(n) => {
+            if !a.job.run.quiet {
+                bar.suspend(|| eprintln!("lopper: {n}"));
+            }
+        }
         Progress::Statistics(_) | Progress::Done(_) => {}
     };
     let report = driver::prune(&cfg, &on_progress);

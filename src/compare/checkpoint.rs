@@ -1,20 +1,23 @@
-//! What a comparison keeps while it runs: parked weights of solved layers
+//! What a comparison keeps while it runs: the weights of solved layers
 //! until their run has every layer, the checkpoint files rewritten as
 //! solves finish, and the stop request shared with a signal handler.
 //!
 //! - [`Parking`]: each solved layer's weights, encoded in the layer's
-//!   dtype and in storage orientation, in a hidden folder removed when the
-//!   parking is dropped (or by [`Control::remove_scratch`] when the process
-//!   exits without unwinding).
+//!   dtype and in storage orientation, in memory. Runs that keep models
+//!   are solved one after another (see [`super`]), so at most one run's
+//!   weights are held, and no file is left behind however the process
+//!   ends.
 //! - [`write_checkpoint`]: `comparison.json` and `comparison.html` written
 //!   atomically (temp file + rename) while holding [`Control::writing`], so
-//!   an impatient second Ctrl-C never cuts a file short.
+//!   an impatient second Ctrl-C never cuts a file short;
+//!   [`mark_stopped`] is what such a second signal leaves.
 
-use super::data::{Comparison, Source};
+use super::data::{self, Comparison, Source, Status};
 use super::{page, HTML_NAME, JSON_NAME};
 use crate::error::{Error, Result};
 use crate::io;
-use std::path::{Path, PathBuf};
+use std::collections::BTreeMap;
+use std::path::Path;
 use std::sync::atomic::AtomicBool;
 use std::sync::Mutex;
 
@@ -24,44 +27,21 @@ pub struct Control {
     /// Set to ask the driver to stop after the current solve.
     pub stop: AtomicBool,
     /// Held by the driver while it writes files; a handler that wants to
-    /// exit at once takes it first, so no file is left half-written.
+    /// exit at once takes it first, so no file is left half-written and no
+    /// temporary is left behind.
     pub writing: Mutex<()>,
-    /// Scratch folders to remove if the process exits without unwinding.
-    pub scratch: Mutex<Vec<PathBuf>>,
 }
 
-impl Control {
-    /// Remove the scratch folders (for a handler about to exit at once).
-    pub fn remove_scratch(&self) {
-        let dirs = self.scratch.lock().unwrap_or_else(|e| e.into_inner());
-        for d in dirs.iter() {
-            let _ = std::fs::remove_dir_all(d);
-        }
-    }
-}
-
-/// Parked weights of solved layers, waiting for their run to finish.
+/// Solved layers' weights, waiting for their run to finish.
+#[derive(Default)]
 pub(crate) struct Parking {
-    dir: PathBuf,
+    parked: BTreeMap<(usize, usize), Vec<u8>>,
 }
 
 impl Parking {
-    /// Create the folder `dir` and register it with `control` as scratch.
-    pub(crate) fn create(dir: PathBuf, control: &Control) -> Result<Self> {
-        std::fs::create_dir_all(&dir).map_err(|e| {
-            Error::output(&dir, format!("{}: cannot create it: {e}", dir.display()))
-        })?;
-        control.scratch.lock().unwrap_or_else(|e| e.into_inner()).push(dir.clone());
-        Ok(Parking { dir })
-    }
-
-    fn path(&self, run: usize, layer: usize) -> PathBuf {
-        self.dir.join(format!("{run}-{layer}.bin"))
-    }
-
     /// Keep layer `layer` of run `run`, encoded as `dtype`.
     pub(crate) fn park(
-        &self,
+        &mut self,
         run: usize,
         layer: usize,
         values: &[f64],
@@ -69,29 +49,33 @@ impl Parking {
     ) -> Result<()> {
         let mut bytes = Vec::new();
         io::dtype::encode_f64(dtype, values, &mut bytes).map_err(|e| {
-            Error::output(&self.dir, format!("{}: cannot encode weights: {e}", self.dir.display()))
+            Error::new(
+                crate::error::ErrorKind::Solve,
+                format!(
+                    "run {run}, layer {layer}: cannot encode the pruned weights as {dtype}: {e}"
+                ),
+            )
         })?;
-        let p = self.path(run, layer);
-        std::fs::write(&p, &bytes).map_err(|e| {
-            Error::output(&p, format!("{}: cannot park pruned weights: {e}", p.display()))
-        })
+        self.parked.insert((run, layer), bytes);
+        Ok(())
     }
 
     /// The values [`Parking::park`] kept, decoded from `dtype`.
     pub(crate) fn fetch(&self, run: usize, layer: usize, dtype: io::Dtype) -> Result<Vec<f64>> {
-        let p = self.path(run, layer);
-        let bytes = std::fs::read(&p).map_err(|e| {
-            Error::output(&p, format!("{}: cannot read parked weights: {e}", p.display()))
+        let bytes = self.parked.get(&(run, layer)).ok_or_else(|| {
+            Error::new(
+                crate::error::ErrorKind::Solve,
+                format!("run {run}, layer {layer}: no weights were kept"),
+            )
         })?;
         let mut out = Vec::new();
-        io::dtype::decode_f64(dtype, &bytes, &mut out);
+        io::dtype::decode_f64(dtype, bytes, &mut out);
         Ok(out)
     }
-}
 
-impl Drop for Parking {
-    fn drop(&mut self) {
-        let _ = std::fs::remove_dir_all(&self.dir);
+    /// Forget run `run`'s weights.
+    pub(crate) fn release(&mut self, run: usize) {
+        self.parked.retain(|&(r, _), _| r != run);
     }
 }
 
@@ -102,12 +86,34 @@ impl Drop for Parking {
 /// [`crate::ErrorKind::Output`] when a file cannot be written.
 pub(crate) fn write_checkpoint(out_dir: &Path, comp: &Comparison, control: &Control) -> Result<()> {
     let _guard = control.writing.lock().unwrap_or_else(|e| e.into_inner());
+    write_files(out_dir, comp)
+}
+
+fn write_files(out_dir: &Path, comp: &Comparison) -> Result<()> {
     let json = comp.to_json();
-    io::write_atomic(&out_dir.join(JSON_NAME), |w| std::io::Write::write_all(w, json.as_bytes()))?;
     let source = Source { label: "this run".to_string(), path: None, comparison: comp.clone() };
     let html = page::render(std::slice::from_ref(&source), Some(&comp.settings.focus));
-    io::write_atomic(&out_dir.join(HTML_NAME), |w| std::io::Write::write_all(w, html.as_bytes()))?;
+    let mut staged = io::Staged::new();
+    staged.file(&out_dir.join(JSON_NAME), |w| std::io::Write::write_all(w, json.as_bytes()))?;
+    staged.file(&out_dir.join(HTML_NAME), |w| std::io::Write::write_all(w, html.as_bytes()))?;
+    staged.commit()?;
     Ok(())
+}
+
+/// For a handler about to exit at once, holding [`Control::writing`]: mark
+/// the last checkpoint in `out_dir` (if any) as interrupted, so the record
+/// never says `running` after the process is gone.
+pub fn mark_stopped(out_dir: &Path) {
+    let Ok(mut source) = data::load(&out_dir.join(JSON_NAME)) else { return };
+    let comp = &mut source.comparison;
+    if comp.status == Status::Running {
+        comp.status = Status::Interrupted;
+        comp.status_detail = Some(
+            "stopped at once by a second signal; the solves of the last checkpoint are kept"
+                .to_string(),
+        );
+        let _ = write_files(out_dir, comp);
+    }
 }
 
 #[cfg(test)]
@@ -115,6 +121,7 @@ mod tests {
     use super::*;
     use crate::compare::data::{self, testing};
     use crate::solve::{Method, Pattern, Scope};
+    use std::path::PathBuf;
 
     fn scratch(tag: &str) -> PathBuf {
         let d = std::env::temp_dir().join(format!("lopper-ckpt-{tag}-{}", std::process::id()));
@@ -124,11 +131,8 @@ mod tests {
     }
 
     #[test]
-    fn parked_weights_round_trip_in_their_dtype_and_vanish_on_drop() {
-        let root = scratch("park");
-        let control = Control::default();
-        let dir = root.join(".parked");
-        let p = Parking::create(dir.clone(), &control).unwrap();
+    fn parked_weights_round_trip_in_their_dtype() {
+        let mut p = Parking::default();
         let v = vec![0.5, -1.25, 0.0, 3.0];
         p.park(2, 7, &v, io::Dtype::F32).unwrap();
         assert_eq!(p.fetch(2, 7, io::Dtype::F32).unwrap(), v);
@@ -137,11 +141,10 @@ mod tests {
         p.park(0, 0, &[1.0 / 3.0], io::Dtype::BF16).unwrap();
         assert_eq!(p.fetch(0, 0, io::Dtype::BF16).unwrap(), vec![0.333984375]);
         let e = p.fetch(9, 9, io::Dtype::F32).unwrap_err();
-        assert!(e.to_string().contains("9-9.bin"), "{e}");
-        assert_eq!(control.scratch.lock().unwrap().as_slice(), std::slice::from_ref(&dir));
-        drop(p);
-        assert!(!dir.exists());
-        std::fs::remove_dir_all(&root).unwrap();
+        assert!(e.to_string().contains("run 9, layer 9"), "{e}");
+        p.release(2);
+        assert!(p.fetch(2, 7, io::Dtype::F32).is_err());
+        assert!(p.fetch(0, 0, io::Dtype::BF16).is_ok());
     }
 
     #[test]

@@ -19,13 +19,20 @@
 //! - What finished is kept: after a solve, at most every
 //!   [`CHECKPOINT_SECONDS`], after each run and at the end,
 //!   `comparison.json` and `comparison.html` are rewritten atomically with
-//!   every finished solve. A stop request ([`Control`]) is honoured between
-//!   solves: the files are written once more with status `interrupted`,
-//!   runs that finished every layer keep their models (`--keep-models`),
-//!   and the caller exits non-zero.
-//! - `--keep-models` and `--eval-text` park each solved layer's weights
-//!   (`checkpoint`) until its run has every layer; then the run's model
-//!   is evaluated and written, and the parked files removed.
+//!   every finished solve. A stop request ([`Control`]: Ctrl-C, SIGTERM)
+//!   is honoured between solves: the files are written once more with
+//!   status `interrupted`, runs that finished every layer keep their
+//!   models (`--keep-models`), and the caller exits non-zero.
+//! - Whole runs when they are kept: with `--keep-models` or `--eval-text`
+//!   the runs are solved one after another ([`Sink::whole_runs`]), each
+//!   its own pass over the statistics, so an interrupted comparison keeps
+//!   every run finished before the stop as a complete model (and its
+//!   end-to-end figures). Without them, runs sharing statistics are solved
+//!   block by block (each block's statistics built once), and a stop keeps
+//!   every finished solve, but usually no whole run. Each solved layer's
+//!   weights are held in memory (`checkpoint`) until its run has every
+//!   layer; then the run's model is evaluated and written (staged and
+//!   renamed into place together), and the weights dropped.
 
 mod checkpoint;
 pub mod data;
@@ -33,7 +40,7 @@ pub mod page;
 mod svg;
 pub mod table;
 
-pub use checkpoint::Control;
+pub use checkpoint::{mark_stopped, Control};
 
 use crate::driver::{self, JobConfig, Progress, Sink, Solved, Target};
 use crate::error::{Error, Result};
@@ -147,19 +154,17 @@ impl Record<'_> {
     fn write_model(&mut self, run: usize, replaced: &BTreeMap<String, Vec<f64>>) -> Result<()> {
         (self.progress)(Progress::Writing);
         let target = self.cfg.runs()[run];
-        let dir = self.cfg.out_dir.join("models").join(&self.comp.runs[run].id);
-        let out = match self.model.layout() {
-            io::Layout::File(p) => {
-                std::fs::create_dir_all(&dir).map_err(|e| {
-                    Error::output(&dir, format!("{}: cannot create it: {e}", dir.display()))
-                })?;
-                dir.join(p.file_name().unwrap_or_default())
-            }
-            _ => dir,
-        };
+        let (dir, out) = model_output(self.cfg, self.model, &self.comp.runs[run].id);
         let meta = driver::model_meta(&self.cfg.job, target, self.planned.len());
+        // Held while files are staged and renamed: a signal that stops the
+        // process at once waits, so no temporary is left behind.
         let _guard = self.control.writing.lock().unwrap_or_else(|e| e.into_inner());
-        driver::write_checked(self.model, || io::write_model(self.model, &out, replaced, &meta))?;
+        let mut staged = io::Staged::new();
+        staged.folder(&dir)?;
+        let edits = io::Edits { replaced, ..io::Edits::default() };
+        let stage = || io::stage_model(&mut staged, self.model, &out, &edits, &meta);
+        driver::write_checked(self.model, stage)?;
+        staged.commit()?;
         self.comp.runs[run].model_output = Some(out.display().to_string());
         self.outputs.push(out);
         Ok(())
@@ -180,7 +185,7 @@ impl Sink for Record<'_> {
     }
 
     fn solved(&mut self, run: usize, layer: &Planned, s: Solved) -> Result<()> {
-        if let Some(p) = &self.parking {
+        if let Some(p) = &mut self.parking {
             let li = self.index[&layer.name];
             p.park(run, li, &layer.to_storage(s.values), layer.dtype)?;
         }
@@ -209,12 +214,19 @@ impl Sink for Record<'_> {
             if self.cfg.keep_models {
                 self.write_model(run, &replaced)?;
             }
+            if let Some(p) = &mut self.parking {
+                p.release(run);
+            }
         }
         self.checkpoint()
     }
 
     fn stop_requested(&self) -> bool {
         self.control.stop.load(Ordering::SeqCst)
+    }
+
+    fn whole_runs(&self) -> bool {
+        self.parking.is_some()
     }
 }
 
@@ -264,10 +276,24 @@ pub fn compare(
     let source = driver::open_source(job, &targets, &model)?;
     let mut read = vec![calib];
     read.extend(eval_text);
-    check_out_dir(&cfg.out_dir, &crate::outputs::input_files(&model, &read))?;
-    std::fs::create_dir_all(&cfg.out_dir).map_err(|e| {
-        Error::usage(format!("--out-dir {}: cannot create it: {e}", cfg.out_dir.display()))
-    })?;
+    let read_files = crate::outputs::input_files(&model, &read);
+    check_out_dir(&cfg.out_dir, &read_files)?;
+    if cfg.keep_models {
+        for t in &targets {
+            let id = data::run_id(t.method.name(), &data::target_key(t.pattern));
+            check_kept_model(cfg, &model, &id, &read_files)?;
+        }
+    }
+    if cfg.keep_models {
+        for n in crate::outputs::skipped_notes(&model) {
+            progress(Progress::Note(&n));
+        }
+    }
+    std::fs::create_dir(&cfg.out_dir)
+        .or_else(|e| if cfg.out_dir.is_dir() { Ok(()) } else { Err(e) })
+        .map_err(|e| {
+            Error::usage(format!("--out-dir {}: cannot create it: {e}", cfg.out_dir.display()))
+        })?;
 
     let planned: Vec<Planned> = source.blocks().iter().flatten().cloned().collect();
     let layers = planned
@@ -313,12 +339,7 @@ pub fn compare(
         runs: targets.iter().map(|t| data::new_run(t.method, t.pattern, inputs)).collect(),
         notice: VALIDATION_NOTICE.to_string(),
     };
-    let parking = if cfg.keep_models || job.eval.is_some() {
-        let dir = cfg.out_dir.join("models").join(format!(".parked-{}", std::process::id()));
-        Some(Parking::create(dir, control)?)
-    } else {
-        None
-    };
+    let parking = (cfg.keep_models || job.eval.is_some()).then(Parking::default);
     let index = planned.iter().enumerate().map(|(i, l)| (l.name.clone(), i)).collect();
     let mut record = Record {
         cfg,
@@ -382,15 +403,11 @@ fn describe_rows(path: &Path, layers: &[LayerInfo]) -> String {
     )
 }
 
-/// Refuse an output folder that is a file, or whose outputs would replace
-/// one of `inputs`.
+/// Refuse an output folder that is a file, that cannot be created or
+/// take new files, or whose outputs would replace one of `inputs` or a
+/// special file.
 fn check_out_dir(dir: &Path, inputs: &[PathBuf]) -> Result<()> {
-    if dir.exists() && !dir.is_dir() {
-        return Err(Error::usage(format!(
-            "--out-dir {}: exists and is not a folder",
-            dir.display()
-        )));
-    }
+    crate::outputs::check_dir("--out-dir", dir)?;
     for name in [JSON_NAME, HTML_NAME] {
         let p = dir.join(name);
         if inputs.contains(&io::canonical_target(&p)) {
@@ -399,6 +416,59 @@ fn check_out_dir(dir: &Path, inputs: &[PathBuf]) -> Result<()> {
                 dir.display(),
                 p.display()
             )));
+        }
+        if let Ok(m) = std::fs::metadata(&p) {
+            if !m.is_file() {
+                return Err(Error::usage(format!(
+                    "--out-dir {}: {} is not a regular file ({}); lopper will not replace it",
+                    dir.display(),
+                    p.display(),
+                    io::file_kind(&m)
+                )));
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Where run `id`'s model is kept: its folder under `models/`, and the
+/// model's output path (the file of a single-file model, else the folder).
+fn model_output(cfg: &CompareConfig, model: &Model, id: &str) -> (PathBuf, PathBuf) {
+    let dir = cfg.out_dir.join("models").join(id);
+    let out = match model.layout() {
+        io::Layout::File(p) => dir.join(p.file_name().unwrap_or_default()),
+        _ => dir.clone(),
+    };
+    (dir, out)
+}
+
+/// Refuse a kept model (`--keep-models`) whose files would replace an
+/// input or a special file, before any work.
+fn check_kept_model(
+    cfg: &CompareConfig,
+    model: &Model,
+    id: &str,
+    inputs: &[PathBuf],
+) -> Result<()> {
+    let (_, out) = model_output(cfg, model, id);
+    let (_, files) =
+        io::model_targets(model, &out).map_err(|e| Error::from(e).context("--keep-models"))?;
+    for f in files.iter().chain([&out]) {
+        let refuse = |what: String| {
+            Err(Error::usage(format!("--keep-models: {} {what}", f.display())).with_path(f))
+        };
+        if inputs.contains(&io::canonical_target(f)) {
+            return refuse("would replace an input file".to_string());
+        }
+        match std::fs::metadata(f) {
+            Ok(m) if f == &out && m.is_dir() && !matches!(model.layout(), io::Layout::File(_)) => {}
+            Ok(m) if !m.is_file() => {
+                return refuse(format!(
+                    "is not a regular file ({}); lopper will not replace it",
+                    io::file_kind(&m)
+                ))
+            }
+            _ => {}
         }
     }
     Ok(())

@@ -7,7 +7,9 @@
 //! Loop order: when the source's statistics do not depend on the pruned
 //! weights (activations, or text without propagation), every run shares
 //! one pass: blocks outside, runs inside, one block's statistics in memory.
-//! When they do (sequential text calibration), each run has its own pass
+//! When they do (sequential text calibration), or when the sink asks for
+//! whole runs ([`Sink::whole_runs`]: compare keeping models, so that an
+//! interrupted comparison keeps finished runs), each run has its own pass
 //! of the source: runs outside, blocks inside.
 //!
 //! Parallelism lives inside the kernels (matrix products and rows), bounded
@@ -132,6 +134,8 @@ pub enum Progress<'a> {
     Evaluating,
     /// Outputs are being written.
     Writing,
+    /// Something the user should know that is not an error (one line).
+    Note(&'a str),
 }
 
 /// Where solved layers go.
@@ -163,6 +167,13 @@ pub trait Sink {
 
     /// Asked between solves: stop now, leaving later solves undone.
     fn stop_requested(&self) -> bool {
+        false
+    }
+
+    /// Solve the runs one after another (runs outside blocks), even when
+    /// they could share one pass, so that every run finished before a stop
+    /// is whole.
+    fn whole_runs(&self) -> bool {
         false
     }
 }
@@ -219,8 +230,11 @@ pub fn drive<'m>(
     let n_layers: usize = first.blocks().iter().map(Vec::len).sum();
     progress(Progress::Start(n_layers * targets.len()));
     let all: Vec<usize> = (0..targets.len()).collect();
-    let cohorts: Vec<Vec<usize>> =
-        if first.follows_pruned() { all.iter().map(|&r| vec![r]).collect() } else { vec![all] };
+    let cohorts: Vec<Vec<usize>> = if first.follows_pruned() || sink.whole_runs() {
+        all.iter().map(|&r| vec![r]).collect()
+    } else {
+        vec![all]
+    };
     let mut next = Some(first);
     let mut done = 0;
     for cohort in cohorts {

@@ -5,7 +5,7 @@ use super::shrink::shrink;
 use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target, UnitCut};
 use crate::error::Result;
 use crate::io::{self, Model};
-use crate::outputs::{check_distinct, input_files};
+use crate::outputs::{check_distinct, check_file, check_model_output, input_files, Write};
 use crate::report::{
     LayerReport, PhaseTimes, Report, Settings, StructureReport, Summary, VALIDATION_NOTICE,
 };
@@ -92,10 +92,29 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     let eval_text = job.eval.as_ref().map(|e| e.text.as_path());
     let mut read: Vec<&Path> = vec![job.calibration.path()];
     read.extend(eval_text);
+    // Every output checked before any work: not an input, not each other,
+    // not a special file, in a folder that takes new files.
+    let inputs = input_files(&model, &read);
     let mut outs = vec![("-o", cfg.output.as_path())];
     outs.extend(cfg.report.as_deref().map(|p| ("--report", p)));
     outs.extend(cfg.trace.as_deref().map(|p| ("--trace", p)));
-    check_distinct(&input_files(&model, &read), &outs)?;
+    check_distinct(&inputs, &outs)?;
+    let model_files = check_model_output("-o", &model, &cfg.output, &inputs)?;
+    let mut outs = vec![("-o", cfg.output.as_path())];
+    if model_files.iter().all(|f| f != &cfg.output) {
+        outs.extend(model_files.iter().map(|f| ("-o", f.as_path())));
+    }
+    outs.extend(cfg.report.as_deref().map(|p| ("--report", p)));
+    outs.extend(cfg.trace.as_deref().map(|p| ("--trace", p)));
+    check_distinct(&inputs, &outs)?;
+    for (flag, p) in [("--report", &cfg.report), ("--trace", &cfg.trace)] {
+        if let Some(p) = p {
+            check_file(flag, p, Write::MayStream)?;
+        }
+    }
+    for n in crate::outputs::skipped_notes(&model) {
+        progress(Progress::Note(&n));
+    }
     if let Some(t) = eval_text {
         // Fail on a bad evaluation file before the long part.
         crate::tokenize::read_text(t)?;
@@ -134,17 +153,28 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         threads: job.threads,
     };
     let meta = model_meta(job, cfg.target, sink.layers.len());
+    // Every output is staged (temporaries in the target folders) and
+    // renamed into place together once all are written; a failure removes
+    // every temporary and leaves nothing new.
+    let mut staged = io::Staged::new();
     let (written, structure) = if sink.cuts.is_empty() {
-        let write = || io::write_model(&model, &cfg.output, &sink.replaced, &meta);
-        (super::write_checked(&model, write)?, None)
+        let edits = io::Edits { replaced: &sink.replaced, ..io::Edits::default() };
+        let stage = || io::stage_model(&mut staged, &model, &cfg.output, &edits, &meta);
+        super::write_checked(&model, stage)?;
+        (model_files, None)
     } else {
         let small = shrink(&model, &sink.replaced, &sink.cuts)?;
         let mut config = serde_json::to_vec_pretty(&small.config).expect("JSON serialises");
         config.push(b'\n');
         let files = BTreeMap::from([("config.json".to_string(), config)]);
         let edits = io::Edits { replaced: &small.values, reshaped: &small.shapes, files: &files };
-        let write = || io::write_model_edited(&model, &cfg.output, &edits, &meta);
-        let written = super::write_checked(&model, write)?;
+        let stage = || io::stage_model(&mut staged, &model, &cfg.output, &edits, &meta);
+        super::write_checked(&model, stage)?;
+        let mut written = model_files;
+        let config = cfg.output.join("config.json");
+        if !written.contains(&config) {
+            written.push(config);
+        }
         let report = StructureReport {
             units: sink.cuts.iter().map(|c| c.report.clone()).collect(),
             params_before: small.params_before,
@@ -163,7 +193,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
                 text.push('\n');
             }
         }
-        io::write_atomic(path, |w| std::io::Write::write_all(w, text.as_bytes()))?;
+        staged.file_or_stream(path, text.into_bytes()).map_err(|e| flagged("--trace", e))?;
         outputs.push(path.display().to_string());
     }
     if let Some(path) = &cfg.report {
@@ -181,8 +211,21 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         notice: VALIDATION_NOTICE.to_string(),
     };
     if let Some(path) = &cfg.report {
-        let json = report.to_json();
-        io::write_atomic(path, |w| std::io::Write::write_all(w, json.as_bytes()))?;
+        let json = report.to_json().into_bytes();
+        staged.file_or_stream(path, json).map_err(|e| flagged("--report", e))?;
     }
+    let flags: Vec<(&Path, &str)> = [(&cfg.report, "--report"), (&cfg.trace, "--trace")]
+        .into_iter()
+        .filter_map(|(p, f)| p.as_deref().map(|p| (p, f)))
+        .collect();
+    staged.commit().map_err(|e| {
+        let flag = flags.iter().find(|(p, _)| *p == e.path()).map_or("-o", |(_, f)| f);
+        flagged(flag, e)
+    })?;
     Ok(report)
+}
+
+/// A write error prefixed with the option that named the file.
+fn flagged(flag: &str, e: io::WriteError) -> crate::error::Error {
+    crate::error::Error::from(e).context(flag)
 }

@@ -101,7 +101,10 @@ pub fn escape(text: &str) -> std::borrow::Cow<'_, str> {
 pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
-pub use write::{canonical_target, write_atomic, write_model, write_model_edited, Edits};
+pub use write::{
+    canonical_target, file_kind, folder_of, in_system_dir, is_stream, model_targets, stage_model,
+    write_atomic, write_model, write_model_edited, Edits, Staged,
+};
 
 /// The accessors and the one-line `Display` (`path: tensor 'name': detail`)
 /// that [`LoadError`] and [`WriteError`] share: both name a file, maybe a

@@ -16,10 +16,15 @@
 //!   tensor.
 //! - Shard names in the index must be plain file names (no directories, no
 //!   `..`): the writer reuses them inside the output directory.
-//! - In a directory, subdirectories are neither read nor copied, and
-//!   `.safetensors` files that the index does not name are listed in
-//!   [`Layout::Directory::ignored`] and not copied (they would be unpruned
-//!   weights in the output).
+//! - In a directory, `.safetensors` files at the top that the index does
+//!   not name are listed in [`Layout::Directory::ignored`] and not copied
+//!   (they would be unpruned weights in the output). Subfolders are part of
+//!   the model (e.g. a sentence-transformers `1_Pooling/config.json`):
+//!   every regular file in them is an extra file, copied unchanged. Links
+//!   to files are followed (a Hugging Face cache snapshot is made of them);
+//!   links to folders, hidden folders (`.git`, `.cache`) and special files
+//!   (FIFOs, devices, sockets) are not, and are listed in
+//!   [`Layout::Directory::skipped`].
 
 use std::collections::BTreeMap;
 use std::ops::Range;
@@ -47,9 +52,12 @@ pub enum Layout {
         dir: PathBuf,
         /// The model inside it.
         inner: Box<Layout>,
-        /// Other regular files in the directory, sorted, copied unchanged on
-        /// write.
+        /// Other regular files in the directory and its subfolders, sorted,
+        /// copied unchanged on write.
         extra_files: Vec<PathBuf>,
+        /// Entries neither read nor copied, with the reason: links to
+        /// folders, hidden folders, special files.
+        skipped: Vec<(PathBuf, &'static str)>,
         /// `.safetensors` files in the directory that the index does not name;
         /// neither read nor copied.
         ignored: Vec<PathBuf>,
@@ -137,6 +145,15 @@ impl Model {
     /// How the model is stored.
     pub fn layout(&self) -> &Layout {
         &self.layout
+    }
+
+    /// Entries of a model folder that are neither read nor copied, with the
+    /// reason (see the module docs); empty for other layouts.
+    pub fn skipped(&self) -> &[(PathBuf, &'static str)] {
+        match &self.layout {
+            Layout::Directory { skipped, .. } => skipped,
+            _ => &[],
+        }
     }
 
     /// The tensor files (one, or one per shard sorted by file name).
@@ -234,13 +251,19 @@ fn open_dir(dir: &Path) -> Result<Model, LoadError> {
     let mut indexes = Vec::new();
     let mut weights = Vec::new();
     let mut extra = Vec::new();
+    let mut skipped = Vec::new();
     let entries = std::fs::read_dir(dir).map_err(|e| LoadError::io(dir, "list", e))?;
     for entry in entries {
         let entry = entry.map_err(|e| LoadError::io(dir, "list", e))?;
         let path = entry.path();
         // Follows symlinks (e.g. a Hugging Face cache snapshot).
         let meta = std::fs::metadata(&path).map_err(|e| LoadError::io(&path, "stat", e))?;
+        if meta.is_dir() {
+            walk_subfolder(&path, &mut extra, &mut skipped)?;
+            continue;
+        }
         if !meta.is_file() {
+            skipped.push((path, "not a regular file"));
             continue;
         }
         let name = file_name(&path);
@@ -255,6 +278,7 @@ fn open_dir(dir: &Path) -> Result<Model, LoadError> {
     indexes.sort();
     weights.sort();
     extra.sort();
+    skipped.sort();
     let no_model = |d: String| LoadError::new(dir, K::NoModel, d);
     let names = |v: &[PathBuf]| v.iter().map(|p| file_name(p)).collect::<Vec<_>>().join(", ");
     let (inner, ignored) = match (indexes.as_slice(), weights.as_slice()) {
@@ -294,11 +318,44 @@ fn open_dir(dir: &Path) -> Result<Model, LoadError> {
             dir: dir.to_owned(),
             inner: Box::new(inner.layout),
             extra_files: extra,
+            skipped,
             ignored,
         },
         files: inner.files,
         names: inner.names,
     })
+}
+
+/// Collect the regular files under the subfolder `sub` of a model folder
+/// into `extra`; links to folders, hidden folders and special files go to
+/// `skipped`.
+fn walk_subfolder(
+    sub: &Path,
+    extra: &mut Vec<PathBuf>,
+    skipped: &mut Vec<(PathBuf, &'static str)>,
+) -> Result<(), LoadError> {
+    let link = std::fs::symlink_metadata(sub).map_err(|e| LoadError::io(sub, "stat", e))?;
+    if link.file_type().is_symlink() {
+        skipped.push((sub.to_owned(), "a link to a folder, not followed"));
+        return Ok(());
+    }
+    if file_name(sub).starts_with('.') {
+        skipped.push((sub.to_owned(), "a hidden folder"));
+        return Ok(());
+    }
+    let entries = std::fs::read_dir(sub).map_err(|e| LoadError::io(sub, "list", e))?;
+    for entry in entries {
+        let path = entry.map_err(|e| LoadError::io(sub, "list", e))?.path();
+        let meta = std::fs::metadata(&path).map_err(|e| LoadError::io(&path, "stat", e))?;
+        if meta.is_dir() {
+            walk_subfolder(&path, extra, skipped)?;
+        } else if meta.is_file() {
+            extra.push(path);
+        } else {
+            skipped.push((path, "not a regular file"));
+        }
+    }
+    Ok(())
 }
 
 /// Parse the index's `weight_map` into tensor → shard file name.
@@ -453,17 +510,19 @@ pub(crate) mod tests {
         let d = TestDir::new("model-dir");
         sharded_dir(d.path());
         std::fs::write(d.join("stale.safetensors"), f32_file(&[("a", &[9.0])])).unwrap();
-        std::fs::create_dir(d.join("sub")).unwrap();
+        std::fs::create_dir(d.join(".git")).unwrap();
+        std::fs::write(d.join(".git/HEAD"), "ref").unwrap();
         let m = Model::open(d.path()).unwrap();
         let names: Vec<_> = m.tensors().iter().map(|t| t.name.as_str()).collect();
         assert_eq!(names, ["a", "b", "c"]);
         assert_eq!(m.read_f64("b").unwrap(), [3.0]);
         assert_eq!(m.file_of("c").unwrap().path(), d.join("m-2.safetensors"));
         assert_eq!(m.bytes("a").unwrap(), [1f32.to_le_bytes(), 2f32.to_le_bytes()].concat());
-        let Layout::Directory { inner, extra_files, ignored, .. } = m.layout() else {
+        let Layout::Directory { inner, extra_files, ignored, skipped, .. } = m.layout() else {
             panic!("expected a directory layout, got {:?}", m.layout());
         };
         assert_eq!(extra_files, &[d.join("config.json")]);
+        assert_eq!(skipped, &[(d.join(".git"), "a hidden folder")]);
         assert_eq!(ignored, &[d.join("stale.safetensors")]);
         let Layout::Sharded { shards, .. } = &**inner else { panic!("expected shards") };
         assert_eq!(shards, &[d.join("m-1.safetensors"), d.join("m-2.safetensors")]);

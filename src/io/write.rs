@@ -1,6 +1,7 @@
 //! Writing a pruned model: atomic file writes and layout mirroring.
 //!
-//! Entry points: [`write_model`] and [`write_atomic`].
+//! Entry points: [`write_model`], [`write_atomic`], and [`Staged`] (the
+//! outputs of one run, committed together).
 //!
 //! Output format of every tensor file:
 //! - Tensors keep their names, shapes and dtypes and are written in the
@@ -32,53 +33,305 @@ use super::{Layout, Model, TensorFile, WriteError, WriteErrorKind as K};
 
 /// Write a file atomically: `write` fills a temp file created next to `path`,
 /// which is then flushed, fsynced and renamed over `path`. On any error the
-/// temp file is removed and `path` is left as it was.
+/// temp file is removed and `path` is left as it was. A `path` that exists
+/// and is not a regular file (a folder, device, FIFO or socket) is refused.
 ///
 /// # Errors
-/// [`K::BadOutput`] if `path` has no file name; [`K::Io`] naming `path` if
-/// creating, writing (including errors returned by `write`), syncing or
-/// renaming fails.
+/// [`K::BadOutput`] if `path` has no file name or is not a regular file;
+/// [`K::Io`] naming `path` if creating, writing (including errors returned
+/// by `write`), syncing or renaming fails.
 pub fn write_atomic(
     path: &Path,
     write: impl FnOnce(&mut BufWriter<File>) -> std::io::Result<()>,
 ) -> Result<(), WriteError> {
-    static COUNTER: AtomicUsize = AtomicUsize::new(0);
+    let mut staged = Staged::new();
+    staged.file(path, write)?;
+    staged.commit().map(|_| ())
+}
+
+static COUNTER: AtomicUsize = AtomicUsize::new(0);
+
+/// A hidden name next to `path` for a temporary file or folder.
+fn temp_beside(path: &Path) -> Result<PathBuf, WriteError> {
     let Some(name) = path.file_name() else {
         return Err(WriteError::new(path, K::BadOutput, "output path has no file name"));
     };
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p,
-        _ => Path::new("."),
-    };
-    let tmp = dir.join(format!(
+    Ok(folder_of(path).join(format!(
         ".{}.lopper-tmp-{}-{}",
         name.to_string_lossy(),
         std::process::id(),
         COUNTER.fetch_add(1, Ordering::Relaxed)
-    ));
-    let file = OpenOptions::new()
-        .write(true)
-        .create_new(true)
-        .open(&tmp)
-        .map_err(|e| WriteError::io(path, "create a temp file in its folder", e))?;
-    let result = (|| {
-        let mut w = BufWriter::new(file);
-        write(&mut w).map_err(|e| WriteError::io(path, "write", e))?;
-        let file = w.into_inner().map_err(|e| WriteError::io(path, "write", e.into_error()))?;
-        file.sync_all().map_err(|e| WriteError::io(path, "sync", e))?;
-        drop(file);
-        std::fs::rename(&tmp, path).map_err(|e| WriteError::io(path, "rename the temp file", e))
-    })();
-    if result.is_err() {
-        let _ = std::fs::remove_file(&tmp);
-        return result;
+    )))
+}
+
+/// The folder `path` is in (`.` for a bare file name).
+pub fn folder_of(path: &Path) -> &Path {
+    match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
     }
-    // Make the rename itself durable; not every platform can sync a folder.
-    #[cfg(unix)]
-    if let Ok(d) = File::open(dir) {
-        let _ = d.sync_all();
+}
+
+/// Whether `path` is a character device or a FIFO (following links), or
+/// an existing file under `/dev` or `/proc` (`/dev/stdout` redirected to a
+/// file): an output that is written into directly rather than replaced.
+pub fn is_stream(path: &Path) -> bool {
+    use std::os::unix::fs::FileTypeExt;
+    std::fs::metadata(path).is_ok_and(|m| {
+        let t = m.file_type();
+        t.is_char_device() || t.is_fifo() || (m.is_file() && in_system_dir(path))
+    })
+}
+
+/// Whether `path` (as given, or resolved) lies under `/dev` or `/proc`,
+/// where lopper never creates or replaces a file.
+pub fn in_system_dir(path: &Path) -> bool {
+    let sys = |p: &Path| p.starts_with("/dev") || p.starts_with("/proc");
+    sys(path) || sys(&canonical_target(path))
+}
+
+/// One staged output.
+enum Staging {
+    /// A complete temp file to rename over `target`.
+    Temp { tmp: PathBuf, target: PathBuf },
+    /// A new folder built under a hidden name, renamed to `target`.
+    Folder { tmp: PathBuf, target: PathBuf },
+    /// Bytes written straight into a character device or FIFO.
+    Stream { target: PathBuf, bytes: Vec<u8> },
+}
+
+/// The outputs of one run, staged and committed together: every file is
+/// written completely (flushed and fsynced) to a temporary in its target
+/// folder, and a new folder is built under a hidden name beside its
+/// target; [`Staged::commit`] then writes any streams and renames
+/// everything into place. Dropping an uncommitted set removes every
+/// temporary, so a failure leaves nothing new.
+#[derive(Default)]
+pub struct Staged {
+    items: Vec<Staging>,
+    /// Final paths, in staging order.
+    targets: Vec<PathBuf>,
+    committed: bool,
+}
+
+impl Staged {
+    /// An empty set.
+    pub fn new() -> Self {
+        Staged::default()
     }
-    Ok(())
+
+    /// Where a path inside a staged new folder is built, if it is inside one.
+    fn mapped(&self, p: &Path) -> Option<PathBuf> {
+        self.items.iter().find_map(|i| match i {
+            Staging::Folder { tmp, target } => {
+                p.strip_prefix(target).ok().map(|rest| tmp.join(rest))
+            }
+            _ => None,
+        })
+    }
+
+    /// Make sure folder `dir` will exist after the commit: an existing
+    /// folder is used as it is; a missing one is built under a hidden name
+    /// (or inside a staged folder) and renamed into place at the commit.
+    ///
+    /// # Errors
+    /// [`K::BadOutput`] if `dir` exists and is not a folder; [`K::Io`] if
+    /// the folder cannot be created.
+    pub fn folder(&mut self, dir: &Path) -> Result<(), WriteError> {
+        if let Some(m) = self.mapped(dir) {
+            return std::fs::create_dir_all(&m)
+                .map_err(|e| WriteError::io(dir, "create the folder", e));
+        }
+        match std::fs::metadata(dir) {
+            Ok(m) if m.is_dir() => return Ok(()),
+            Ok(_) => return Err(WriteError::new(dir, K::BadOutput, "exists and is not a folder")),
+            Err(_) => {}
+        }
+        let parent = folder_of(dir);
+        if !parent.is_dir() {
+            self.folder(parent)?;
+            if let Some(m) = self.mapped(dir) {
+                return std::fs::create_dir_all(&m)
+                    .map_err(|e| WriteError::io(dir, "create the folder", e));
+            }
+        }
+        let tmp = temp_beside(dir)?;
+        std::fs::create_dir(&tmp).map_err(|e| WriteError::io(dir, "create the folder", e))?;
+        self.items.push(Staging::Folder { tmp, target: dir.to_owned() });
+        Ok(())
+    }
+
+    /// Stage file `path`: `write` fills its temporary, which is flushed and
+    /// fsynced. The folder of `path` must exist or be staged.
+    ///
+    /// # Errors
+    /// [`K::BadOutput`] if `path` has no file name or exists and is not a
+    /// regular file; [`K::Io`] naming `path` if creating, writing or
+    /// syncing fails.
+    pub fn file(
+        &mut self,
+        path: &Path,
+        write: impl FnOnce(&mut BufWriter<File>) -> std::io::Result<()>,
+    ) -> Result<(), WriteError> {
+        let (tmp, item) = match self.mapped(path) {
+            Some(m) => (m, None),
+            None => {
+                if let Ok(m) = std::fs::metadata(path) {
+                    if !m.is_file() {
+                        return Err(not_regular(path, &m));
+                    }
+                }
+                if in_system_dir(path) {
+                    return Err(WriteError::new(
+                        path,
+                        K::BadOutput,
+                        "is under /dev or /proc, where lopper creates and replaces no file",
+                    ));
+                }
+                let tmp = temp_beside(path)?;
+                (tmp.clone(), Some(Staging::Temp { tmp, target: path.to_owned() }))
+            }
+        };
+        let file = OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&tmp)
+            .map_err(|e| WriteError::io(path, "create a temp file in its folder", e))?;
+        // Registered before writing, so a failure removes it.
+        let registered = item.is_some();
+        if let Some(item) = item {
+            self.items.push(item);
+        }
+        let result = (|| {
+            let mut w = BufWriter::new(file);
+            write(&mut w).map_err(|e| WriteError::io(path, "write", e))?;
+            let file = w.into_inner().map_err(|e| WriteError::io(path, "write", e.into_error()))?;
+            file.sync_all().map_err(|e| WriteError::io(path, "sync", e))
+        })();
+        if let Err(e) = result {
+            if registered {
+                self.items.pop();
+            }
+            let _ = std::fs::remove_file(&tmp);
+            return Err(e);
+        }
+        self.targets.push(path.to_owned());
+        Ok(())
+    }
+
+    /// Stage `bytes` for `path`: written straight into it at the commit
+    /// when it is a character device or FIFO ([`is_stream`]), else staged
+    /// as a file.
+    ///
+    /// # Errors
+    /// As [`Staged::file`].
+    pub fn file_or_stream(&mut self, path: &Path, bytes: Vec<u8>) -> Result<(), WriteError> {
+        if is_stream(path) {
+            self.items.push(Staging::Stream { target: path.to_owned(), bytes });
+            self.targets.push(path.to_owned());
+            Ok(())
+        } else {
+            self.file(path, |w| w.write_all(&bytes))
+        }
+    }
+
+    /// Write the streams, then rename every temporary into place, and
+    /// return the final paths in staging order.
+    ///
+    /// # Errors
+    /// [`K::Io`] if a stream cannot be written (nothing is renamed then) or
+    /// a rename fails (the temporaries not yet renamed are removed).
+    pub fn commit(mut self) -> Result<Vec<PathBuf>, WriteError> {
+        for item in &self.items {
+            if let Staging::Stream { target, bytes } = item {
+                let mut f = OpenOptions::new()
+                    .write(true)
+                    .open(target)
+                    .map_err(|e| WriteError::io(target, "open", e))?;
+                f.write_all(bytes)
+                    .and_then(|()| f.flush())
+                    .map_err(|e| WriteError::io(target, "write", e))?;
+            }
+        }
+        let mut folders = Vec::new();
+        let items = std::mem::take(&mut self.items);
+        let mut rest = items.into_iter();
+        while let Some(item) = rest.next() {
+            let (tmp, target) = match &item {
+                Staging::Temp { tmp, target } | Staging::Folder { tmp, target } => (tmp, target),
+                Staging::Stream { .. } => continue,
+            };
+            if let Err(e) = std::fs::rename(tmp, target) {
+                let err = WriteError::io(target, "rename the temp file", e);
+                self.items.push(item);
+                self.items.extend(rest);
+                return Err(err);
+            }
+            folders.push(folder_of(target).to_owned());
+        }
+        self.committed = true;
+        // Make the renames durable; not every platform can sync a folder.
+        folders.sort();
+        folders.dedup();
+        for d in folders {
+            if let Ok(d) = File::open(d) {
+                let _ = d.sync_all();
+            }
+        }
+        Ok(std::mem::take(&mut self.targets))
+    }
+}
+
+impl Drop for Staged {
+    fn drop(&mut self) {
+        if self.committed {
+            return;
+        }
+        for item in &self.items {
+            match item {
+                Staging::Temp { tmp, .. } => {
+                    let _ = std::fs::remove_file(tmp);
+                }
+                Staging::Folder { tmp, .. } => {
+                    let _ = std::fs::remove_dir_all(tmp);
+                }
+                Staging::Stream { .. } => {}
+            }
+        }
+    }
+}
+
+/// The refusal of an existing output that is not a regular file.
+pub(crate) fn not_regular(path: &Path, m: &std::fs::Metadata) -> WriteError {
+    WriteError::new(
+        path,
+        K::BadOutput,
+        format!(
+            "is not a regular file ({}); lopper replaces outputs and will not replace it",
+            file_kind(m)
+        ),
+    )
+}
+
+/// What kind of file `m` describes, in words.
+pub fn file_kind(m: &std::fs::Metadata) -> &'static str {
+    use std::os::unix::fs::FileTypeExt;
+    let t = m.file_type();
+    if t.is_dir() {
+        "a folder"
+    } else if t.is_char_device() {
+        "a character device"
+    } else if t.is_block_device() {
+        "a block device"
+    } else if t.is_fifo() {
+        "a FIFO"
+    } else if t.is_socket() {
+        "a socket"
+    } else if t.is_file() {
+        "a regular file"
+    } else {
+        "a special file"
+    }
 }
 
 /// Where a planned output file gets its bytes.
@@ -163,21 +416,42 @@ pub fn write_model_edited(
     edits: &Edits<'_>,
     metadata: &BTreeMap<String, String>,
 ) -> Result<Vec<PathBuf>, WriteError> {
-    let encoded = encode_replaced(model, out, edits.replaced, edits.reshaped)?;
+    let mut staged = Staged::new();
+    stage_model(&mut staged, model, out, edits, metadata)?;
+    staged.commit()
+}
 
-    // Plan: (target path, job) for every output file.
-    let (to_dir, inner, extra) = match model.layout() {
-        Layout::File(_) => (false, model.layout(), &[][..]),
-        Layout::Sharded { .. } => (true, model.layout(), &[][..]),
-        Layout::Directory { inner, extra_files, .. } => (true, &**inner, extra_files.as_slice()),
+/// The files a pruned copy of `model` written to `out` consists of, after
+/// the checks [`write_model`] makes before writing (outputs that are
+/// inputs, the kind of `out`). Returns whether `out` is a folder, and the
+/// files.
+///
+/// # Errors
+/// [`K::WouldOverwriteInput`], [`K::BadOutput`].
+pub fn model_targets(model: &Model, out: &Path) -> Result<(bool, Vec<PathBuf>), WriteError> {
+    let (to_dir, targets) = plan_targets(model, out);
+    check_outputs(model, out, to_dir, targets.iter().map(|(p, _)| p.as_path()))?;
+    Ok((to_dir, targets.into_iter().map(|(p, _)| p).collect()))
+}
+
+/// What a planned output file is: a tensor file, the index, or another
+/// file of a model folder (with its path relative to the folder).
+enum Role<'a> {
+    Tensors(&'a TensorFile),
+    Index(&'a Path),
+    Extra(&'a Path, String),
+}
+
+/// (target, role) for every output file of `model` written to `out`, and
+/// whether `out` is a folder.
+fn plan_targets<'m>(model: &'m Model, out: &Path) -> (bool, Vec<(PathBuf, Role<'m>)>) {
+    let (to_dir, inner, extra, root) = match model.layout() {
+        Layout::File(_) => (false, model.layout(), &[][..], None),
+        Layout::Sharded { .. } => (true, model.layout(), &[][..], None),
+        Layout::Directory { inner, extra_files, dir, .. } => {
+            (true, &**inner, extra_files.as_slice(), Some(dir.as_path()))
+        }
     };
-    if !edits.files.is_empty() && !matches!(model.layout(), Layout::Directory { .. }) {
-        return Err(WriteError::new(
-            out,
-            K::BadOutput,
-            "new config files can only be written for a model directory; give MODEL as a directory",
-        ));
-    }
     let target = |p: &Path| {
         if to_dir {
             out.join(p.file_name().unwrap_or_default())
@@ -185,32 +459,74 @@ pub fn write_model_edited(
             out.to_owned()
         }
     };
-    let mut plan: Vec<(PathBuf, Job<'_>)> = Vec::new();
-    let mut data_bytes = 0usize;
+    let mut plan = Vec::new();
     for f in model.files() {
-        let job = tensor_job(f, &encoded, edits.reshaped, metadata);
-        if let Job::Tensors { parts, .. } = &job {
-            data_bytes += parts.iter().map(|p| p.len()).sum::<usize>();
-        }
-        plan.push((target(f.path()), job));
+        plan.push((target(f.path()), Role::Tensors(f)));
     }
     if let Layout::Sharded { index, .. } = inner {
-        let job = if edits.reshaped.is_empty() {
-            Job::Copy(index)
-        } else {
-            Job::Bytes(index_with_total(index, data_bytes)?)
-        };
-        plan.push((target(index), job));
+        plan.push((target(index), Role::Index(index)));
     }
     for p in extra {
-        let name = p.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
-        match edits.files.get(&name) {
-            Some(bytes) => plan.push((target(p), Job::Bytes(bytes.clone()))),
-            None => plan.push((target(p), Job::Copy(p))),
+        let rel = root
+            .and_then(|r| p.strip_prefix(r).ok())
+            .map_or_else(|| PathBuf::from(p.file_name().unwrap_or_default()), Path::to_owned);
+        plan.push((out.join(&rel), Role::Extra(p, rel.to_string_lossy().into_owned())));
+    }
+    (to_dir, plan)
+}
+
+/// Stage a pruned copy of `model` at `out` in `staged` (see
+/// [`write_model_edited`]); nothing is in place until the set is committed.
+///
+/// # Errors
+/// As [`write_model_edited`].
+pub fn stage_model(
+    staged: &mut Staged,
+    model: &Model,
+    out: &Path,
+    edits: &Edits<'_>,
+    metadata: &BTreeMap<String, String>,
+) -> Result<(), WriteError> {
+    let encoded = encode_replaced(model, out, edits.replaced, edits.reshaped)?;
+    if !edits.files.is_empty() && !matches!(model.layout(), Layout::Directory { .. }) {
+        return Err(WriteError::new(
+            out,
+            K::BadOutput,
+            "new config files can only be written for a model directory; give MODEL as a directory",
+        ));
+    }
+    let (to_dir, targets) = plan_targets(model, out);
+    // Plan: (target path, job) for every output file.
+    let mut plan: Vec<(PathBuf, Job<'_>)> = Vec::new();
+    let mut data_bytes = 0usize;
+    for (path, role) in &targets {
+        if let Role::Tensors(f) = role {
+            let job = tensor_job(f, &encoded, edits.reshaped, metadata);
+            if let Job::Tensors { parts, .. } = &job {
+                data_bytes += parts.iter().map(|p| p.len()).sum::<usize>();
+            }
+            plan.push((path.clone(), job));
+        }
+    }
+    for (path, role) in &targets {
+        match role {
+            Role::Tensors(_) => {}
+            Role::Index(index) => {
+                let job = if edits.reshaped.is_empty() {
+                    Job::Copy(index)
+                } else {
+                    Job::Bytes(index_with_total(index, data_bytes)?)
+                };
+                plan.push((path.clone(), job));
+            }
+            Role::Extra(p, rel) => match edits.files.get(rel) {
+                Some(bytes) => plan.push((path.clone(), Job::Bytes(bytes.clone()))),
+                None => plan.push((path.clone(), Job::Copy(p))),
+            },
         }
     }
     for name in edits.files.keys() {
-        if !extra.iter().any(|p| p.file_name().is_some_and(|n| n.to_string_lossy() == *name)) {
+        if !targets.iter().any(|(_, r)| matches!(r, Role::Extra(_, rel) if rel == name)) {
             plan.push((out.join(name), Job::Bytes(edits.files[name].clone())));
         }
     }
@@ -218,26 +534,26 @@ pub fn write_model_edited(
     check_outputs(model, out, to_dir, plan.iter().map(|(p, _)| p.as_path()))?;
 
     if to_dir {
-        std::fs::create_dir_all(out)
-            .map_err(|e| WriteError::io(out, "create the output directory", e))?;
+        staged.folder(out)?;
     }
-    let mut written = Vec::with_capacity(plan.len());
     for (path, job) in plan {
+        if let (true, Some(parent)) = (to_dir, path.parent()) {
+            staged.folder(parent)?;
+        }
         match job {
-            Job::Tensors { header, parts } => write_atomic(&path, |w| {
+            Job::Tensors { header, parts } => staged.file(&path, |w| {
                 w.write_all(&header)?;
                 parts.iter().try_for_each(|p| w.write_all(p))
             })?,
             Job::Copy(src) => {
                 let mut input = File::open(src)
                     .map_err(|e| WriteError::load(&path, super::LoadError::io(src, "open", e)))?;
-                write_atomic(&path, |w| std::io::copy(&mut input, w).map(|_| ()))?;
+                staged.file(&path, |w| std::io::copy(&mut input, w).map(|_| ()))?;
             }
-            Job::Bytes(bytes) => write_atomic(&path, |w| w.write_all(&bytes))?,
+            Job::Bytes(bytes) => staged.file(&path, |w| w.write_all(&bytes))?,
         }
-        written.push(path);
     }
-    Ok(written)
+    Ok(())
 }
 
 /// The shard index at `index` with `metadata.total_size` set to `total`
@@ -700,6 +1016,34 @@ mod tests {
         let e = write_model(&m, &dst, &repl(&[("zz", &[1.0])]), &none).unwrap_err();
         assert_eq!(e.kind(), K::NoSuchTensor);
         assert_files(d.path(), &["in.safetensors"]);
+    }
+
+    #[test]
+    fn a_staged_set_commits_together_or_leaves_nothing() {
+        let d = TestDir::new("w-staged");
+        let (a, sub) = (d.join("a.txt"), d.join("new/deeper"));
+        {
+            let mut st = Staged::new();
+            st.file(&a, |w| w.write_all(b"a")).unwrap();
+            st.folder(&sub).unwrap();
+            st.file(&sub.join("b.txt"), |w| w.write_all(b"b")).unwrap();
+            let e = st.file(&d.join("c.txt"), |_| Err(std::io::Error::other("full"))).unwrap_err();
+            assert!(e.to_string().contains("c.txt: cannot write: full"), "{e}");
+            // Dropped without a commit: nothing new, no temporary.
+        }
+        assert_files(d.path(), &[]);
+        let mut st = Staged::new();
+        st.file(&a, |w| w.write_all(b"a")).unwrap();
+        st.folder(&sub).unwrap();
+        st.file(&sub.join("b.txt"), |w| w.write_all(b"b")).unwrap();
+        // Before the commit only hidden temporaries exist.
+        assert!(TestDir::list(d.path()).iter().all(|n| n.starts_with('.')));
+        assert_eq!(st.commit().unwrap(), [a.clone(), sub.join("b.txt")]);
+        assert_files(d.path(), &["a.txt", "new"]);
+        assert_eq!(std::fs::read(sub.join("b.txt")).unwrap(), b"b");
+        // A folder where a file is expected is refused.
+        let e = Staged::new().file(&sub, |_| Ok(())).unwrap_err();
+        assert_eq!(e.kind(), K::BadOutput);
     }
 
     #[test]
