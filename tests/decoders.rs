@@ -384,3 +384,51 @@ fn structured_cuts_that_cannot_be_done_are_refused_before_any_work() {
     assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
     assert!(stderr(&o).contains("model directory"), "{}", stderr(&o));
 }
+
+#[test]
+fn neurons_removed_with_activations_of_a_model_directory() {
+    let st = setup("llama-cut-acts", write_llama);
+    // The inputs of each block's down_proj (48 wide), from a seeded
+    // generator: the activations file names them like the weights.
+    let acts = st._dir.path("acts.safetensors");
+    let rows = 200;
+    let t: Vec<T> = (0..LAYERS)
+        .map(|i| {
+            let name = format!("model.layers.{i}.mlp.down_proj.weight");
+            f32s(&name, &[rows, 48], &values(rows * 48, 50 + i as u64))
+        })
+        .collect();
+    write_st(&acts, &t);
+    let (m, a, out, rep) = (s(&st.model), s(&acts), s(&st.out), s(&st.report));
+    let args = ["prune", m, "--activations", a, "--only", "*down_proj*", "--remove-neurons", "12"];
+    let o = lopper(&[&args[..], &["-o", out, "--report", rep, "-q"]].concat());
+    assert!(o.status.success(), "{}", stderr(&o));
+    let (small, _) = read_st(&st.out.join("model.safetensors"));
+    for i in 0..LAYERS {
+        let p = format!("model.layers.{i}.mlp");
+        assert_eq!(small[&format!("{p}.gate_proj.weight")].1, vec![36, D]);
+        assert_eq!(small[&format!("{p}.up_proj.weight")].1, vec![36, D]);
+        assert_eq!(small[&format!("{p}.down_proj.weight")].1, vec![D, 36]);
+    }
+    let cfg: Value =
+        serde_json::from_str(&std::fs::read_to_string(st.out.join("config.json")).unwrap())
+            .unwrap();
+    assert_eq!(cfg["intermediate_size"], 36);
+    let r: Value = serde_json::from_str(&std::fs::read_to_string(&st.report).unwrap()).unwrap();
+    assert_eq!(r["structure"]["units"].as_array().unwrap().len(), LAYERS);
+    // A consumer left out of the selection is refused before any work.
+    let o = lopper(&[
+        "prune",
+        m,
+        "--activations",
+        a,
+        "--only",
+        "*.0.mlp.down_proj*",
+        "--remove-neurons",
+        "12",
+        "-o",
+        s(&st._dir.path("other")),
+    ]);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(stderr(&o).contains("model.layers.1.mlp.down_proj.weight"), "{}", stderr(&o));
+}

@@ -193,9 +193,9 @@ pub struct PruneArgs {
     #[arg(long, value_enum, default_value = "l0")]
     pub method: Method,
     /// Remove this many FFN neurons from every block, a fraction (0.25) or
-    /// a count (384), and write a smaller model (MODEL must be a directory;
-    /// with --text). Combines with --sparsity or --pattern, which then apply
-    /// to what remains.
+    /// a count (384), and write a smaller model (MODEL must be a directory
+    /// with config.json). Combines with --sparsity or --pattern, which then
+    /// apply to what remains.
     #[arg(long, value_name = "F|N", help_heading = "Structured", allow_hyphen_values = true)]
     pub remove_neurons: Option<String>,
     /// Remove this many key/value heads, each with the query heads that

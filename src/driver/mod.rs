@@ -28,7 +28,7 @@ pub use layer::{
 pub(crate) use prune::model_meta;
 pub use prune::{prune, PruneConfig};
 
-use crate::arch::units::{head_limit, UnitKind};
+use crate::arch::units::{head_limit, UnitKind, Units};
 use crate::error::{Error, Result};
 use crate::evaluate::EvalOptions;
 use crate::io::Model;
@@ -188,12 +188,17 @@ pub enum Finish {
 }
 
 /// Plan parameters for `targets` under `cfg`.
-fn plan_params<'a>(cfg: &'a JobConfig, targets: &'a [(Method, Pattern)]) -> PlanParams<'a> {
+fn plan_params<'a>(
+    cfg: &'a JobConfig,
+    targets: &'a [(Method, Pattern)],
+    structured: bool,
+) -> PlanParams<'a> {
     PlanParams {
         selection: &cfg.selection,
         holdout: cfg.holdout,
         needs_holdout: cfg.ridge == (Ridge::Auto { fallback: None }),
         targets,
+        structured,
     }
 }
 
@@ -208,7 +213,8 @@ pub fn open_source<'m>(
     model: &'m Model,
 ) -> Result<Box<dyn LayerSource + 'm>> {
     let pairs: Vec<(Method, Pattern)> = targets.iter().map(|t| (t.method, t.pattern)).collect();
-    source::open(&cfg.calibration, model, &plan_params(cfg, &pairs))
+    let structured = targets.iter().any(|t| t.cut.is_some());
+    source::open(&cfg.calibration, model, &plan_params(cfg, &pairs, structured))
 }
 
 /// Solve every selected layer of `first` for every run of `targets`,
@@ -305,42 +311,41 @@ pub fn drive<'m>(
 /// express, a cut that leaves nothing, a consumer left out of the
 /// selection, a pattern that does not fit the consumer's kept width.
 fn check_cuts(targets: &[Target], src: &dyn LayerSource) -> Result<()> {
+    let all = src.all_units();
+    let planned = |name: &str| src.blocks().iter().flatten().any(|l| l.name == name);
     for t in targets {
         let Some(spec) = t.cut else { continue };
-        for b in 0..src.blocks().len() {
-            let units = src.units(b);
-            for kind in [UnitKind::Neuron, UnitKind::Head] {
-                let Some(amount) = spec.amount(kind) else { continue };
-                let flag = CutSpec::flag(kind);
-                let model_type = src.model_type();
-                let limit = match kind {
-                    UnitKind::Head => model_type.as_deref().and_then(head_limit),
-                    UnitKind::Neuron => None,
+        for kind in [UnitKind::Neuron, UnitKind::Head] {
+            let Some(amount) = spec.amount(kind) else { continue };
+            let flag = CutSpec::flag(kind);
+            let limit = match kind {
+                UnitKind::Head => src.model_type().as_deref().and_then(head_limit),
+                UnitKind::Neuron => None,
+            };
+            if let Some(why) = limit {
+                return Err(Error::usage(format!("{flag}: {why}")));
+            }
+            let of_kind: Vec<&Units> = all.iter().filter(|u| u.kind == kind).collect();
+            if of_kind.is_empty() {
+                let why = if all.is_empty() {
+                    "it needs the model's blocks: text calibration (--text), or activations \
+                     of a model directory with config.json"
+                } else {
+                    "the model has no such units"
                 };
-                let found = units.iter().find(|u| u.kind == kind);
-                let u = match (found, limit) {
-                    (Some(u), None) => u,
-                    (_, Some(why)) => return Err(Error::usage(format!("{flag}: {why}"))),
-                    (None, None) if units.is_empty() => {
-                        return Err(Error::usage(format!(
-                            "{flag} needs text calibration (--text), which knows the model's \
-                             blocks"
-                        )))
-                    }
-                    (None, None) => {
-                        return Err(Error::usage(format!("{flag}: the model has no such units")))
-                    }
-                };
+                return Err(Error::usage(format!("{flag}: {why}")));
+            }
+            for u in of_kind {
                 let removed = amount.removed(u.count);
                 if removed >= u.count {
                     return Err(Error::usage(format!(
-                        "{flag} {amount} removes {removed} of the {} {} of block {b}; keep at \
+                        "{flag} {amount} removes {removed} of the {} {} of each block; keep at \
                          least one",
                         u.count,
                         kind.plural()
                     )));
                 }
-                if !src.blocks()[b].iter().any(|l| l.name == u.consumer) {
+                if !planned(&u.consumer) {
                     return Err(Error::usage(format!(
                         "{flag} needs '{}' selected (it reads the {} and is refit); check --only \
                          / --skip",

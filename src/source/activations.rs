@@ -4,6 +4,7 @@
 //! matrices, so memory is one layer's statistics.
 
 use super::{check_layer, BlockStats, LayerSource, PlanParams, Planned};
+use crate::arch::{self, units::Units};
 use crate::calib::{holdout_count, LayerGrams};
 use crate::error::{Error, Result};
 use crate::io::{Model, TensorFile};
@@ -27,6 +28,10 @@ pub struct Activations<'m> {
     blocks: Vec<Vec<Planned>>,
     /// Activation rows per layer, in block order.
     rows: Vec<usize>,
+    /// Structured runs: every set of removable units of the model (from
+    /// its config.json) and its `model_type`.
+    units: Vec<Units>,
+    model_type: Option<String>,
 }
 
 impl<'m> Activations<'m> {
@@ -134,13 +139,33 @@ impl<'m> Activations<'m> {
             blocks.push(vec![layer]);
             rows.push(n);
         }
-        Ok(Activations { model, file, holdout: params.holdout, blocks, rows })
+        let (units, model_type) =
+            if params.structured { model_units(model)? } else { (vec![], None) };
+        Ok(Activations { model, file, holdout: params.holdout, blocks, rows, units, model_type })
     }
 
     /// The activations file.
     pub fn path(&self) -> PathBuf {
         self.file.path().to_path_buf()
     }
+}
+
+/// The removable units of `model`, from its config.json and tensors, for a
+/// structured run calibrated from activations.
+fn model_units(model: &Model) -> Result<(Vec<Units>, Option<String>)> {
+    let net = arch::load(model)?;
+    let cfg = arch::ArchConfig::read(&arch::model_dir(model))?;
+    let units: Vec<Units> = (0..net.num_blocks()).flat_map(|b| net.units(b)).collect();
+    // An activations file holds each layer's inputs for its `[d_out, d_in]`
+    // weight as stored; GPT-2 stores `[d_in, d_out]`.
+    if let Some(u) = units.iter().find(|u| net.linear(&u.consumer).is_some_and(|l| l.transposed)) {
+        return Err(Error::usage(format!(
+            "structured pruning from --activations needs weights stored [d_out, d_in]; '{}' is \
+             stored [d_in, d_out] (GPT-2): calibrate with --text",
+            u.consumer
+        )));
+    }
+    Ok((units, Some(cfg.model_type)))
 }
 
 impl LayerSource for Activations<'_> {
@@ -177,6 +202,24 @@ impl LayerSource for Activations<'_> {
         let [d_out, d_in] = layer.shape;
         let flat = self.model.read_f64(&layer.name)?;
         Ok(Mat::from_fn(d_out, d_in, |r, c| flat[r * d_in + c]))
+    }
+
+    fn model_type(&self) -> Option<String> {
+        self.model_type.clone()
+    }
+
+    fn units(&self, b: usize) -> Vec<Units> {
+        // Each layer is a block of its own, its group index 0.
+        let layer = &self.blocks[b][0];
+        self.units
+            .iter()
+            .filter(|u| u.consumer == layer.name)
+            .map(|u| Units { group: layer.group, ..u.clone() })
+            .collect()
+    }
+
+    fn all_units(&self) -> Vec<Units> {
+        self.units.clone()
     }
 
     fn hand_back(&mut self, _: &Planned, _: &[f64]) -> Result<()> {

@@ -62,6 +62,9 @@ pub struct PlanParams<'a> {
     pub needs_holdout: bool,
     /// Every (method, pattern) the layers will be solved for.
     pub targets: &'a [(Method, Pattern)],
+    /// Some run removes FFN neurons or heads: the source must know the
+    /// model's units.
+    pub structured: bool,
 }
 
 /// One selected linear layer.
@@ -153,10 +156,16 @@ pub trait LayerSource {
         None
     }
 
-    /// The removable units of block `b` (FFN neurons, attention heads), when
-    /// the source knows the model's block structure.
+    /// The removable units whose consumer is a layer of block `b` (FFN
+    /// neurons, attention heads), with the consumer's group index in this
+    /// block, when the source knows the model's block structure.
     fn units(&self, _b: usize) -> Vec<Units> {
         Vec::new()
+    }
+
+    /// Every set of removable units of the model, selected or not.
+    fn all_units(&self) -> Vec<Units> {
+        (0..self.blocks().len()).flat_map(|b| self.units(b)).collect()
     }
 }
 
