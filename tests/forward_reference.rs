@@ -540,6 +540,39 @@ fn mqa_rows(t: &Tensor, d: usize, hd: usize) -> Tensor {
     Tensor::cat(&[part(0, d), part(d, hd), part(2 * d, hd)], 0).unwrap()
 }
 
+/// candle-transformers' bigcode model on GPT-2 tensors (file layout, as
+/// `map` holds them) of a model drawn like `spec` with shared key/value
+/// heads: Conv1D weights transposed, `c_attn` cut to the multi-query layout,
+/// names under `transformer.`; `n_inner` as the written config says.
+fn bigcode(map: &Map, spec: &Gpt2Spec, n_inner: Option<usize>) -> ct::bigcode::GPTBigCode {
+    let (d, hd) = (spec.d, spec.d / spec.heads);
+    let mut m = Map::new();
+    for (name, t) in map {
+        let t = if name.ends_with("c_attn.weight") {
+            mqa_rows(&tr(t), d, hd)
+        } else if name.ends_with("c_attn.bias") {
+            mqa_rows(t, d, hd)
+        } else if name.starts_with("h.") && t.rank() == 2 {
+            tr(t)
+        } else {
+            t.clone()
+        };
+        m.insert(format!("transformer.{name}"), t);
+    }
+    let cfg = ct::bigcode::Config {
+        vocab_size: spec.vocab,
+        max_position_embeddings: spec.positions,
+        num_hidden_layers: spec.layers,
+        hidden_size: d,
+        layer_norm_epsilon: 1e-5,
+        n_inner,
+        num_attention_heads: spec.heads,
+        multi_query: true,
+        use_cache: false,
+    };
+    ct::bigcode::GPTBigCode::load(vb(&m), cfg).unwrap()
+}
+
 #[test]
 fn gpt2_matches_candle_bigcode() {
     // Why GPT-BigCode is a GPT-2 reference: it is GPT-2's architecture
@@ -566,36 +599,10 @@ fn gpt2_matches_candle_bigcode() {
     };
     let dir = spec.write("fwd-gpt2-bigcode", 500);
     let ids = random_ids(3, 11, spec.vocab, 11);
-    let (d, hd) = (spec.d, spec.d / spec.heads);
     let reference = |map: &Map| {
-        let mut m = Map::new();
-        for (name, t) in map {
-            let key = format!("transformer.{name}");
-            let t = if name.ends_with("c_attn.weight") {
-                mqa_rows(&tr(t), d, hd)
-            } else if name.ends_with("c_attn.bias") {
-                mqa_rows(t, d, hd)
-            } else if name.starts_with("h.") && t.rank() == 2 {
-                tr(t)
-            } else {
-                t.clone()
-            };
-            m.insert(key, t);
-        }
-        let cfg = ct::bigcode::Config {
-            vocab_size: spec.vocab,
-            max_position_embeddings: spec.positions,
-            num_hidden_layers: spec.layers,
-            hidden_size: d,
-            layer_norm_epsilon: 1e-5,
-            n_inner: spec.inner,
-            num_attention_heads: spec.heads,
-            multi_query: true,
-            use_cache: false,
-        };
         // Outside reference: candle-transformers 0.11.1 models::bigcode,
         // last-position logits, run on every prefix.
-        let mut model = ct::bigcode::GPTBigCode::load(vb(&m), cfg).unwrap();
+        let mut model = bigcode(map, &spec, spec.inner);
         by_prefixes(&ids, |x| model.forward(x, 0).unwrap())
     };
     compare_family(
@@ -919,34 +926,9 @@ fn gpt2_without_neurons_loads_in_candle_bigcode_and_runs_as_pruned() {
     let ids = random_ids(3, 11, spec.vocab, 13);
     let ours = net.forward(&Batch::new(&ids)).unwrap();
     let map = candle_core::safetensors::load(target.join("model.safetensors"), &dev()).unwrap();
-    let (d, hd) = (spec.d, spec.d / spec.heads);
-    let mut m = Map::new();
-    for (name, t) in &map {
-        let t = if name.ends_with("c_attn.weight") {
-            mqa_rows(&tr(t), d, hd)
-        } else if name.ends_with("c_attn.bias") {
-            mqa_rows(t, d, hd)
-        } else if name.starts_with("h.") && t.rank() == 2 {
-            tr(t)
-        } else {
-            t.clone()
-        };
-        m.insert(format!("transformer.{name}"), t);
-    }
-    let c = ct::bigcode::Config {
-        vocab_size: spec.vocab,
-        max_position_embeddings: spec.positions,
-        num_hidden_layers: spec.layers,
-        hidden_size: d,
-        layer_norm_epsilon: 1e-5,
-        n_inner: Some(36),
-        num_attention_heads: spec.heads,
-        multi_query: true,
-        use_cache: false,
-    };
     // Outside reference: candle-transformers 0.11.1 models::bigcode with
     // n_inner 36, last-position logits on every prefix.
-    let mut reference = ct::bigcode::GPTBigCode::load(vb(&m), c).unwrap();
+    let mut reference = bigcode(&map, &spec, Some(36));
     let theirs = by_prefixes(&ids, |x| reference.forward(x, 0).unwrap());
     check("gpt2 without 12 of 48 neurons: logits", &ours, &theirs);
 }
