@@ -13,8 +13,9 @@
 //!   faster at the scenario's row count), `as_written` (the given model with
 //!   dense products, when its linear layers are smaller than the dense
 //!   model's: a structural cut).
-//! - Calls alternate between variants, so a change in machine load hits
-//!   all of them alike. Each call's time and the time spent in block linear
+//! - Calls alternate between variants (decoding: token by token, each
+//!   variant with its own cache), so a change in machine load hits all of
+//!   them alike. Each call's time and the time spent in block linear
 //!   layers ([`crate::arch::kernel::layer_time`]) are kept; the rest
 //!   (attention, norms, embeddings, output head) is their difference — the
 //!   part sparsity cannot shrink (Amdahl's law: with a share `s` of the time
@@ -257,24 +258,19 @@ pub fn measure(
         let variants = variants(&layers, &cands, &picked, dense.is_some(), smaller);
         note(&format!("{name}: timing {} variants", variants.len()));
         let mut samples: Vec<(Vec<f64>, Vec<f64>)> = vec![(vec![], vec![]); variants.len()];
-        // A decode run warms up with its own first tokens.
-        let (warm, rounds) =
-            if decoding { (0, cfg.reps) } else { (cfg.warmup, cfg.warmup + cfg.reps) };
+        if decoding {
+            decode_runs(&mut nets, &variants, cfg, &mut ids, &mut samples)?;
+        }
+        let rounds = if decoding { 0 } else { cfg.warmup + cfg.reps };
         for rep in 0..rounds {
             for (vi, v) in variants.iter().enumerate() {
                 let net = &mut nets[v.net];
                 apply(net.as_mut(), &v.kernels)?;
-                let (t, k) = if decoding {
-                    let prompt = ids(1, cfg.prompt).remove(0);
-                    decode_run(net.as_ref(), &prompt, cfg, &mut ids)?
-                } else {
-                    let batch = Batch::new(&ids(n, l));
-                    let (t, k) = call(|| net.forward(&batch).map(|_| ()))?;
-                    (vec![t], vec![k])
-                };
-                if rep >= warm {
-                    samples[vi].0.extend(t);
-                    samples[vi].1.extend(k);
+                let batch = Batch::new(&ids(n, l));
+                let (t, k) = call(|| net.forward(&batch).map(|_| ()))?;
+                if rep >= cfg.warmup {
+                    samples[vi].0.push(t);
+                    samples[vi].1.push(k);
                 }
             }
         }
@@ -395,26 +391,42 @@ fn call(f: impl FnOnce() -> arch::Result<()>) -> Result<(f64, f64)> {
     Ok((total, (kernel::layer_time() - k0).as_secs_f64()))
 }
 
-/// One decode run: the prompt (untimed), `warmup` untimed tokens, then
-/// `tokens` timed ones, each fed as one new id.
-fn decode_run(
-    net: &dyn Network,
-    prompt: &[u32],
+/// `reps` decode runs. In each, every variant gets its own cache and the
+/// same prompt (untimed), then the variants take turns token by token —
+/// `warmup` untimed tokens, then `tokens` timed ones, the same random id
+/// for all — so a change in machine load hits them alike.
+fn decode_runs(
+    nets: &mut [Box<dyn Network>],
+    variants: &[Variant],
     cfg: &LatencyConfig,
     ids: &mut dyn FnMut(usize, usize) -> Vec<Vec<u32>>,
-) -> Result<(Vec<f64>, Vec<f64>)> {
-    let mut cache = KvCache::new(net.num_blocks());
-    net.forward_cached(&Batch::new(&[prompt.to_vec()]), &mut cache)?;
-    let (mut t, mut k) = (vec![], vec![]);
-    for s in 0..cfg.warmup + cfg.tokens {
-        let batch = Batch::new(&ids(1, 1));
-        let (a, b) = call(|| net.forward_cached(&batch, &mut cache).map(|_| ()))?;
-        if s >= cfg.warmup {
-            t.push(a);
-            k.push(b);
+    samples: &mut [(Vec<f64>, Vec<f64>)],
+) -> Result<()> {
+    for _ in 0..cfg.reps {
+        let prompt = Batch::new(&ids(1, cfg.prompt));
+        let mut caches = Vec::with_capacity(variants.len());
+        for v in variants {
+            let net = &mut nets[v.net];
+            apply(net.as_mut(), &v.kernels)?;
+            let mut cache = KvCache::new(net.num_blocks());
+            net.forward_cached(&prompt, &mut cache)?;
+            caches.push(cache);
+        }
+        for s in 0..cfg.warmup + cfg.tokens {
+            let batch = Batch::new(&ids(1, 1));
+            for (vi, v) in variants.iter().enumerate() {
+                let net = &mut nets[v.net];
+                apply(net.as_mut(), &v.kernels)?;
+                let cache = &mut caches[vi];
+                let (t, k) = call(|| net.forward_cached(&batch, cache).map(|_| ()))?;
+                if s >= cfg.warmup {
+                    samples[vi].0.push(t);
+                    samples[vi].1.push(k);
+                }
+            }
         }
     }
-    Ok((t, k))
+    Ok(())
 }
 
 fn rel_error(a: &Tensor, b: &Tensor) -> Result<f64> {

@@ -192,6 +192,44 @@ fn short(v: f64) -> String {
 #[cfg(test)]
 mod tests {
     use super::non_dominated;
+    use crate::compare::data::testing::{comparison, run};
+    use crate::compare::data::{EndToEnd, WholeLatency};
+    use crate::compare::page::testing::{charts, page};
+    use crate::solve::{Method, Pattern, Scope};
+
+    #[test]
+    fn the_chart_marks_the_frontier_runs_and_needs_both_figures() {
+        let row = |s| Pattern::Unstructured { sparsity: s, scope: Scope::Row };
+        let mut runs = vec![
+            run(Method::Obs, row(0.5), 0.01, Some(1.5), 2),
+            run(Method::Obs, row(0.7), 0.02, Some(1.5), 2),
+            run(Method::Magnitude, row(0.7), 0.05, Some(1.5), 2),
+        ];
+        let h = page(comparison(2, runs.clone()), None);
+        assert!(!charts(&h).contains(&"frontier"), "no timings: no chart");
+        // obs 0.5: 1.2x, 0.99; obs 0.7: 1.8x, 0.97; magnitude 0.7: 1.7x, 0.90
+        // (beaten by obs 0.7 on both).
+        for (r, (x, y)) in runs.iter_mut().zip([(1.2, 0.99), (1.8, 0.97), (1.7, 0.90)]) {
+            r.whole = Some(WholeLatency {
+                scenario: "decode_batch_1".into(),
+                dense_ms: 10.0 * x,
+                pruned_ms: 10.0,
+                speedup: x,
+            });
+            r.end_to_end = Some(EndToEnd {
+                metric: "mean cosine".into(),
+                value: y,
+                dense: Some(1.0),
+                higher_is_better: true,
+                details: serde_json::Value::Null,
+            });
+        }
+        let h = page(comparison(2, runs), None);
+        assert!(charts(&h).contains(&"frontier"));
+        let flags: Vec<&str> =
+            h.split("data-frontier=\"").skip(1).map(|s| &s[..s.find('"').unwrap()]).collect();
+        assert_eq!(flags, ["true", "true", "false"]);
+    }
 
     #[test]
     fn frontier_keeps_points_no_other_beats_on_both_axes() {
