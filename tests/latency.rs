@@ -217,7 +217,7 @@ fn cached_decode_matches_the_full_forward_at_every_step() {
         assert!(e <= TOL, "{what}: {e:.3e}");
         // A cache that forgot a position would change the logits.
         let mut cache = KvCache::new(net.num_blocks());
-        let a = net.forward_cached(&Batch::new(&[prompt.clone()]), &mut cache).unwrap();
+        let a = net.forward_cached(&Batch::new(std::slice::from_ref(prompt)), &mut cache).unwrap();
         assert_eq!(cache.len(), 5);
         let mut short = KvCache::new(net.num_blocks());
         net.forward_cached(&Batch::new(&[prompt[1..4].to_vec()]), &mut short).unwrap();

@@ -237,8 +237,12 @@ mod tests {
         // off; (1.5, 0.90) is beaten by (2.0, 0.95) on both axes.
         let pts = [(1.2, 0.99), (1.5, 0.90), (2.0, 0.95), (3.0, 0.80)];
         assert_eq!(non_dominated(&pts, true), vec![0, 2, 3]);
-        // Lower is better (perplexity): (1.5, 0.90) now beats (1.2, 0.99).
-        assert_eq!(non_dominated(&pts, false), vec![1, 3]);
+        // Lower is better (perplexity): (3.0, 0.80) is fastest and lowest,
+        // so it beats every other point.
+        assert_eq!(non_dominated(&pts, false), vec![3]);
+        // Perplexities 5, 6, 7 at 1.0x, 2.0x, 1.5x: the third is slower and
+        // worse than the second.
+        assert_eq!(non_dominated(&[(1.0, 5.0), (2.0, 6.0), (1.5, 7.0)], false), vec![0, 1]);
         // Equal points do not remove each other.
         assert_eq!(non_dominated(&[(1.0, 1.0), (1.0, 1.0)], true), vec![0, 1]);
     }
