@@ -8,7 +8,7 @@
 //! keys ([`attention_at`]), a greedy decode loop ([`greedy`]) and its check
 //! against the full-sequence forward ([`check_against_full`]). The
 //! families' cached blocks are in `llama.rs` and `gpt2.rs`
-//! ([`Network::forward_cached`](super::Network::forward_cached)).
+//! ([`Network::forward_cached`]).
 //!
 //! With the cache, the query at position `p` sees keys `0..=p`; without it
 //! the causal mask gives the same set, so both forwards compute the same
