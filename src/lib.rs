@@ -63,6 +63,7 @@ pub mod select;
 pub mod solve;
 pub mod source;
 pub mod sparse;
+pub mod timing;
 pub mod tokenize;
 
 pub use driver::{prune, JobConfig, PruneConfig, Ridge, Target};

@@ -233,4 +233,8 @@ impl Network for Bert {
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
     }
+
+    fn set_kernel(&mut self, name: &str, k: Option<super::kernel::Kernel>) -> Result<()> {
+        self.linears.set_kernel(name, k)
+    }
 }

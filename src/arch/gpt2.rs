@@ -23,6 +23,8 @@
 //! (`scale_attn_weights = false`, `scale_attn_by_inverse_layer_idx = true`)
 //! are refused with an error rather than computed wrongly.
 
+use super::decode::{attention_at, KvCache};
+use super::kernel::Kernel;
 use super::units::{self, UnitKind, Units};
 use super::{
     attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
@@ -179,6 +181,57 @@ impl Gpt2 {
     fn lin(&self, name: &str) -> &Linear {
         self.linears.at(name)
     }
+
+    /// Token plus learned position embeddings for positions `start..start+l`.
+    fn embed_at(&self, batch: &Batch, start: usize) -> Result<Tensor> {
+        let (n, l) = batch.dims();
+        if start + l > self.cfg.positions {
+            return Err(ArchError::new(
+                ArchErrorKind::Compute,
+                format!(
+                    "sequence of {} tokens exceeds n_positions = {}",
+                    start + l,
+                    self.cfg.positions
+                ),
+            ));
+        }
+        let ids = batch.ids.flatten_all()?;
+        let tok = self.wte.embedding(&ids)?.reshape((n, l, ()))?;
+        Ok(tok.broadcast_add(&self.wpe.narrow(0, start, l)?.unsqueeze(0)?)?)
+    }
+
+    /// Block `b`; with a cache, `x` holds the positions after the cached
+    /// ones, whose keys and values are read from and appended to it.
+    fn run_block(
+        &self,
+        b: usize,
+        x: &Tensor,
+        tap: &mut Tap<'_>,
+        cache: Option<&mut KvCache>,
+    ) -> Result<Tensor> {
+        let k = &self.blocks[b];
+        let (d, eps) = (self.cfg.hidden, self.cfg.eps);
+        let h = layer_norm(x, &k.ln1.0, &k.ln1.1, eps)?;
+        tap(0, &rows(&h)?)?;
+        let qkv = self.lin(&k.c_attn).forward(&h)?;
+        let part = |i: usize| split_heads(&qkv.narrow(D::Minus1, i * d, d)?, self.cfg.heads);
+        let ctx = match cache {
+            None => attention(&part(0)?, &part(1)?, &part(2)?, true)?,
+            Some(cache) => {
+                let start = cache.len();
+                let (k, v) = cache.append(b, part(1)?, part(2)?)?;
+                attention_at(&part(0)?, &k, &v, start)?
+            }
+        };
+        let ctx = merge_heads(&ctx)?;
+        tap(1, &rows(&ctx)?)?;
+        let x = (x + self.lin(&k.attn_proj).forward(&ctx)?)?;
+        let h = layer_norm(&x, &k.ln2.0, &k.ln2.1, eps)?;
+        tap(2, &rows(&h)?)?;
+        let a = self.cfg.gelu.apply(&self.lin(&k.c_fc).forward(&h)?)?;
+        tap(3, &rows(&a)?)?;
+        Ok((x + self.lin(&k.mlp_proj).forward(&a)?)?)
+    }
 }
 
 impl Network for Gpt2 {
@@ -225,33 +278,21 @@ impl Network for Gpt2 {
     }
 
     fn embed(&self, batch: &Batch) -> Result<Tensor> {
-        let (n, l) = batch.dims();
-        if l > self.cfg.positions {
-            return Err(ArchError::new(
-                ArchErrorKind::Compute,
-                format!("sequence of {l} tokens exceeds n_positions = {}", self.cfg.positions),
-            ));
-        }
-        let ids = batch.ids.flatten_all()?;
-        let tok = self.wte.embedding(&ids)?.reshape((n, l, ()))?;
-        Ok(tok.broadcast_add(&self.wpe.narrow(0, 0, l)?.unsqueeze(0)?)?)
+        self.embed_at(batch, 0)
     }
 
     fn block(&self, b: usize, x: &Tensor, tap: &mut Tap<'_>) -> Result<Tensor> {
-        let k = &self.blocks[b];
-        let (d, eps) = (self.cfg.hidden, self.cfg.eps);
-        let h = layer_norm(x, &k.ln1.0, &k.ln1.1, eps)?;
-        tap(0, &rows(&h)?)?;
-        let qkv = self.lin(&k.c_attn).forward(&h)?;
-        let part = |i: usize| split_heads(&qkv.narrow(D::Minus1, i * d, d)?, self.cfg.heads);
-        let ctx = merge_heads(&attention(&part(0)?, &part(1)?, &part(2)?, true)?)?;
-        tap(1, &rows(&ctx)?)?;
-        let x = (x + self.lin(&k.attn_proj).forward(&ctx)?)?;
-        let h = layer_norm(&x, &k.ln2.0, &k.ln2.1, eps)?;
-        tap(2, &rows(&h)?)?;
-        let a = self.cfg.gelu.apply(&self.lin(&k.c_fc).forward(&h)?)?;
-        tap(3, &rows(&a)?)?;
-        Ok((x + self.lin(&k.mlp_proj).forward(&a)?)?)
+        self.run_block(b, x, tap, None)
+    }
+
+    fn forward_cached(&self, batch: &Batch, cache: &mut KvCache) -> Result<Tensor> {
+        let (_, l) = batch.dims();
+        let mut x = self.embed_at(batch, cache.len())?;
+        for b in 0..self.blocks.len() {
+            x = self.run_block(b, &x, &mut |_, _| Ok(()), Some(&mut *cache))?;
+        }
+        cache.advance(l);
+        self.output(&x)
     }
 
     fn output(&self, x: &Tensor) -> Result<Tensor> {
@@ -269,6 +310,10 @@ impl Network for Gpt2 {
 
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
+    }
+
+    fn set_kernel(&mut self, name: &str, k: Option<Kernel>) -> Result<()> {
+        self.linears.set_kernel(name, k)
     }
 }
 

@@ -31,6 +31,8 @@
 //! models use (4096 and more), and a sequence longer than the configured
 //! window is refused rather than computed with the wrong mask.
 
+use super::decode::{attention_at, KvCache};
+use super::kernel::Kernel;
 use super::units::{self, Slice, UnitKind, Units};
 use super::{
     attention, merge_heads, rms_norm, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
@@ -328,6 +330,46 @@ impl Llama {
     fn lin(&self, name: &str) -> &Linear {
         self.linears.at(name)
     }
+
+    /// Block `b`; with a cache, `x` holds the positions after the cached
+    /// ones, whose keys and values are read from and appended to it.
+    fn run_block(
+        &self,
+        b: usize,
+        x: &Tensor,
+        tap: &mut Tap<'_>,
+        cache: Option<&mut KvCache>,
+    ) -> Result<Tensor> {
+        let k = &self.blocks[b];
+        let c = &self.cfg;
+        let l = x.dim(1)?;
+        let h = rms_norm(x, &k.ln1, c.eps)?;
+        tap(0, &rows(&h)?)?;
+        let q = split_heads(&self.lin(&k.qkv[0]).forward(&h)?, c.heads)?;
+        let kk = split_heads(&self.lin(&k.qkv[1]).forward(&h)?, c.kv_heads)?;
+        let v = split_heads(&self.lin(&k.qkv[2]).forward(&h)?, c.kv_heads)?;
+        let start = cache.as_ref().map_or(0, |c| c.len());
+        let (cos, sin) = rope_tables(&self.inv_freq, start + l)?;
+        let (cos, sin) = (cos.narrow(0, start, l)?, sin.narrow(0, start, l)?);
+        let q = apply_rope(&q, &cos, &sin)?;
+        let kk = apply_rope(&kk, &cos, &sin)?;
+        let rep = c.heads / c.kv_heads;
+        let ctx = match cache {
+            None => attention(&q, &repeat_kv(&kk, rep)?, &repeat_kv(&v, rep)?, true)?,
+            Some(cache) => {
+                let (kk, v) = cache.append(b, kk, v)?;
+                attention_at(&q, &repeat_kv(&kk, rep)?, &repeat_kv(&v, rep)?, start)?
+            }
+        };
+        let ctx = merge_heads(&ctx)?;
+        tap(1, &rows(&ctx)?)?;
+        let x = (x + self.lin(&k.o).forward(&ctx)?)?;
+        let h = rms_norm(&x, &k.ln2, c.eps)?;
+        tap(2, &rows(&h)?)?;
+        let a = (self.lin(&k.gate).forward(&h)?.silu()? * self.lin(&k.up).forward(&h)?)?;
+        tap(3, &rows(&a)?)?;
+        Ok((x + self.lin(&k.down).forward(&a)?)?)
+    }
 }
 
 impl Network for Llama {
@@ -407,27 +449,24 @@ impl Network for Llama {
     }
 
     fn block(&self, b: usize, x: &Tensor, tap: &mut Tap<'_>) -> Result<Tensor> {
-        let k = &self.blocks[b];
-        let c = &self.cfg;
-        let l = x.dim(1)?;
-        let h = rms_norm(x, &k.ln1, c.eps)?;
-        tap(0, &rows(&h)?)?;
-        let q = split_heads(&self.lin(&k.qkv[0]).forward(&h)?, c.heads)?;
-        let kk = split_heads(&self.lin(&k.qkv[1]).forward(&h)?, c.kv_heads)?;
-        let v = split_heads(&self.lin(&k.qkv[2]).forward(&h)?, c.kv_heads)?;
-        let (cos, sin) = rope_tables(&self.inv_freq, l)?;
-        let q = apply_rope(&q, &cos, &sin)?;
-        let kk = apply_rope(&kk, &cos, &sin)?;
-        let rep = c.heads / c.kv_heads;
-        let ctx = attention(&q, &repeat_kv(&kk, rep)?, &repeat_kv(&v, rep)?, true)?;
-        let ctx = merge_heads(&ctx)?;
-        tap(1, &rows(&ctx)?)?;
-        let x = (x + self.lin(&k.o).forward(&ctx)?)?;
-        let h = rms_norm(&x, &k.ln2, c.eps)?;
-        tap(2, &rows(&h)?)?;
-        let a = (self.lin(&k.gate).forward(&h)?.silu()? * self.lin(&k.up).forward(&h)?)?;
-        tap(3, &rows(&a)?)?;
-        Ok((x + self.lin(&k.down).forward(&a)?)?)
+        self.run_block(b, x, tap, None)
+    }
+
+    fn forward_cached(&self, batch: &Batch, cache: &mut KvCache) -> Result<Tensor> {
+        let (_, l) = batch.dims();
+        let start = cache.len();
+        if let Some(win) = self.cfg.window.filter(|&win| start + l > win) {
+            return Err(ArchError::new(
+                ArchErrorKind::Compute,
+                format!("{} positions exceed the sliding attention window of {win}", start + l),
+            ));
+        }
+        let mut x = self.embed(batch)?;
+        for b in 0..self.blocks.len() {
+            x = self.run_block(b, &x, &mut |_, _| Ok(()), Some(&mut *cache))?;
+        }
+        cache.advance(l);
+        self.output(&x)
     }
 
     fn output(&self, x: &Tensor) -> Result<Tensor> {
@@ -447,6 +486,10 @@ impl Network for Llama {
 
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
         self.linears.set(name, values)
+    }
+
+    fn set_kernel(&mut self, name: &str, k: Option<Kernel>) -> Result<()> {
+        self.linears.set_kernel(name, k)
     }
 }
 

@@ -27,7 +27,9 @@
 //! - Blocks compute in f32 with candle-core's CPU backend.
 
 pub mod bert;
+pub mod decode;
 pub mod gpt2;
+pub mod kernel;
 pub mod llama;
 pub mod units;
 
@@ -245,6 +247,9 @@ pub struct Linear {
     pub bias: Option<Tensor>,
     /// The file stores the weight as `[d_in, d_out]` (GPT-2 style).
     pub transposed: bool,
+    /// The product to run instead of candle's dense one, if any
+    /// ([`kernel`]); cleared when the weight is replaced.
+    pub kernel: Option<kernel::Kernel>,
 }
 
 impl Linear {
@@ -256,11 +261,30 @@ impl Linear {
 
     /// `x [.., d_in] → [.., d_out]`.
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
+        let Some(k) = &self.kernel else { return self.product(x) };
+        let t = std::time::Instant::now();
+        let y = match k {
+            kernel::Kernel::Dense => self.product(x),
+            kernel::Kernel::Sparse(w) => self.product_with(x, |x| kernel::sparse_product(w, x)),
+        };
+        kernel::add_time(t);
+        y
+    }
+
+    fn product(&self, x: &Tensor) -> Result<Tensor> {
+        self.product_with(x, |x| Ok(x.matmul(&self.weight.t()?)?))
+    }
+
+    fn product_with(
+        &self,
+        x: &Tensor,
+        f: impl FnOnce(&Tensor) -> Result<Tensor>,
+    ) -> Result<Tensor> {
         // One 2-D product [rows, d_in]·Wᵀ, whatever the leading dimensions.
         let dims = x.dims().to_vec();
         let d_in = *dims.last().expect("at least 1-D");
         let rows = x.elem_count() / d_in.max(1);
-        let y = x.contiguous()?.reshape((rows, d_in))?.matmul(&self.weight.t()?)?;
+        let y = f(&x.contiguous()?.reshape((rows, d_in))?)?;
         let mut out = dims;
         *out.last_mut().expect("at least 1-D") = self.shape().0;
         let y = y.reshape(out)?;
@@ -358,6 +382,28 @@ pub trait Network: Send + Sync {
     /// # Errors
     /// [`ArchErrorKind::Weights`] for an unknown name or a wrong length.
     fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()>;
+
+    /// Put a product kernel in place for a linear layer ([`kernel`]), or
+    /// remove it with `None`.
+    ///
+    /// # Errors
+    /// [`ArchErrorKind::Weights`] for an unknown name or a sparse weight of
+    /// another shape.
+    fn set_kernel(&mut self, name: &str, k: Option<kernel::Kernel>) -> Result<()>;
+
+    /// Decoders: run new tokens `batch` (positions `cache.len()..`) through
+    /// every block, reading and extending the key/value `cache`, and return
+    /// their logits `[n, l, vocab]` ([`decode`]).
+    ///
+    /// # Errors
+    /// [`ArchErrorKind::Unsupported`] for encoders; compute errors.
+    fn forward_cached(&self, batch: &Batch, cache: &mut decode::KvCache) -> Result<Tensor> {
+        let _ = (batch, cache);
+        Err(ArchError::new(
+            ArchErrorKind::Unsupported,
+            format!("{:?} networks have no key/value-cached decoding", self.family()),
+        ))
+    }
 
     /// Run every block without taps and return [`Network::output`].
     fn forward(&self, batch: &Batch) -> Result<Tensor> {
@@ -506,7 +552,7 @@ impl<'a> Weights<'a> {
             self.tensor(&name, &[d_out, d_in])?
         };
         let bias = if bias { Some(self.tensor(&format!("{stem}.bias"), &[d_out])?) } else { None };
-        Ok(Linear { name, weight, bias, transposed })
+        Ok(Linear { name, weight, bias, transposed, kernel: None })
     }
 }
 
@@ -553,6 +599,28 @@ impl Linears {
             ));
         }
         l.weight = Tensor::from_slice(values, (o, i), &Device::Cpu)?;
+        l.kernel = None;
+        Ok(())
+    }
+
+    /// Put a product kernel in place (or remove it with `None`).
+    pub fn set_kernel(&mut self, name: &str, k: Option<kernel::Kernel>) -> Result<()> {
+        let l = self.by_name.get_mut(name).ok_or_else(|| {
+            ArchError::new(ArchErrorKind::Weights, format!("no linear layer '{name}'"))
+        })?;
+        if let Some(kernel::Kernel::Sparse(w)) = &k {
+            if w.shape() != l.shape() {
+                return Err(ArchError::new(
+                    ArchErrorKind::Weights,
+                    format!(
+                        "layer '{name}': sparse kernel of shape {:?} for a {:?} weight",
+                        w.shape(),
+                        l.shape()
+                    ),
+                ));
+            }
+        }
+        l.kernel = k;
         Ok(())
     }
 }

@@ -39,6 +39,10 @@ pub enum Command {
     Speed(SpeedArgs),
     /// Write a pruned model's sparse layers to a compact .sprig file.
     Pack(PackArgs),
+    /// Time the whole model end to end on this CPU: dense against pruned
+    /// with sparse kernels (encoders: sentences/s; decoders: prefill and
+    /// cached decode).
+    Latency(LatencyArgs),
 }
 
 impl ValueEnum for Method {
@@ -250,6 +254,12 @@ pub struct CompareArgs {
     /// speed column to the page.
     #[arg(long, value_name = "B", allow_hyphen_values = true)]
     pub speed_batch: Option<usize>,
+    /// With --keep-models: time every run's model end to end against the
+    /// dense model (as `lopper latency`: batch 1, sentences for encoders,
+    /// cached decode for decoders) and draw the quality-latency frontier
+    /// (with --eval-text).
+    #[arg(long)]
+    pub time_whole: bool,
     /// Target for the per-layer chart (one of the sparsities or patterns)
     /// [default: the highest sparsity, else the first pattern]
     #[arg(long, value_name = "S|N:M", allow_hyphen_values = true)]
@@ -452,4 +462,48 @@ mod tests {
         ])
         .is_err());
     }
+}
+
+/// `lopper latency`.
+#[derive(Debug, Args)]
+pub struct LatencyArgs {
+    /// The model to time (a model directory with config.json): pruned,
+    /// structurally smaller, or dense.
+    pub model: PathBuf,
+    /// The dense model it was cut from, timed as the baseline (default: the
+    /// model itself with dense products, the same cost for unstructured and
+    /// N:M pruning; give it for a structurally smaller model).
+    #[arg(long, value_name = "DIR")]
+    pub dense: Option<PathBuf>,
+    /// Encoders: batch sizes, comma-separated.
+    #[arg(long, value_name = "B,B,..", value_delimiter = ',', default_value = "1,32")]
+    pub batch: Vec<usize>,
+    /// Encoders: tokens per sequence.
+    #[arg(long, value_name = "L", default_value_t = 128)]
+    pub seq: usize,
+    /// Decoders: prefill length in tokens.
+    #[arg(long, value_name = "L", default_value_t = 256)]
+    pub prefill: usize,
+    /// Decoders: prompt tokens before the timed decode steps.
+    #[arg(long, value_name = "L", default_value_t = 32)]
+    pub prompt: usize,
+    /// Decoders: timed tokens per decode run.
+    #[arg(long, value_name = "N", default_value_t = 32)]
+    pub tokens: usize,
+    /// Timed calls per variant (encoder batches, prefills, decode runs).
+    #[arg(long, value_name = "N", default_value_t = 5)]
+    pub reps: usize,
+    /// Untimed calls first (decoders: untimed tokens at the start of each
+    /// decode run).
+    #[arg(long, value_name = "N", default_value_t = 2)]
+    pub warmup: usize,
+    /// Seed for the random token ids.
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    pub json: bool,
+    /// Threads and output volume.
+    #[command(flatten)]
+    pub run: RunArgs,
 }

@@ -207,6 +207,9 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
     if a.speed_batch.is_some() && !a.keep_models {
         return Err(Error::usage("--speed-batch times the pruned models: add --keep-models"));
     }
+    if a.time_whole && !a.keep_models {
+        return Err(Error::usage("--time-whole times the pruned models: add --keep-models"));
+    }
     if a.speed_batch == Some(0) {
         return Err(Error::usage("--speed-batch must be at least 1"));
     }
@@ -218,6 +221,7 @@ pub fn compare_config(a: &CompareArgs) -> Result<CompareConfig> {
         out_dir: a.out_dir.clone(),
         keep_models: a.keep_models,
         speed_batch: a.speed_batch,
+        time_whole: a.time_whole,
         focus,
         globs: (a.job.selection.only.clone(), a.job.selection.skip.clone()),
     })

@@ -10,6 +10,7 @@ mod args;
 mod compare;
 mod config;
 mod inspect;
+mod latency;
 mod progress;
 mod sparse;
 
@@ -74,6 +75,7 @@ pub fn run() -> i32 {
         Command::Report(a) => compare::report(&a).map_err(Failure::from),
         Command::Speed(a) => sparse::speed(&a).map_err(Failure::from),
         Command::Pack(a) => sparse::pack(&a).map_err(Failure::from),
+        Command::Latency(a) => latency::run(&a).map_err(Failure::from),
     };
     match result {
         Ok(()) => EXIT_OK,

@@ -137,6 +137,23 @@ pub struct Speed {
     pub sparse_seconds: f64,
 }
 
+/// Measured whole-model latency of a kept run model against the dense
+/// model (`lopper compare --time-whole`, as `lopper latency`).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct WholeLatency {
+    /// Scenario timed: `encode_batch_1` or `decode_batch_1`.
+    pub scenario: String,
+    /// Dense model, median milliseconds per call (per token decoding).
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
+    pub dense_ms: f64,
+    /// Pruned model on its sparse kernels (or as written when smaller).
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
+    pub pruned_ms: f64,
+    /// `dense_ms / pruned_ms`.
+    #[serde(deserialize_with = "crate::report::f64_or_nan")]
+    pub speedup: f64,
+}
+
 /// One method at one target over the layers.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Run {
@@ -165,6 +182,9 @@ pub struct Run {
     pub end_to_end: Option<EndToEnd>,
     /// Latency, `null` until the speed measurement provides it.
     pub speed: Option<Speed>,
+    /// Whole-model latency (`--time-whole`), absent until measured.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub whole: Option<WholeLatency>,
     /// Where the pruned weights were written (`--keep-models`).
     pub model_output: Option<String>,
 }
@@ -258,6 +278,7 @@ pub fn new_run(method: Method, pattern: Pattern, inputs: &str) -> Run {
         summary: Summary::of(&[], 0.0),
         end_to_end: None,
         speed: None,
+        whole: None,
         model_output: None,
     }
 }
@@ -410,6 +431,7 @@ pub fn from_prune_report(r: Report, date: &str) -> Comparison {
         summary: r.summary.clone(),
         end_to_end: None,
         speed: None,
+        whole: None,
         model_output: r.outputs.first().cloned(),
     };
     // Prune reports time statistics and solve together; keep their figures.

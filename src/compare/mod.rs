@@ -36,6 +36,7 @@
 
 mod checkpoint;
 pub mod data;
+mod latency;
 pub mod page;
 mod svg;
 pub mod table;
@@ -79,6 +80,9 @@ pub struct CompareConfig {
     pub keep_models: bool,
     /// Time each written model's pruned layers at this batch size.
     pub speed_batch: Option<usize>,
+    /// Time each written model end to end against the dense model
+    /// (`--time-whole`) for the frontier chart.
+    pub time_whole: bool,
     /// Target key for the per-layer chart (`None`: the highest sparsity, or
     /// the first target).
     pub focus: Option<String>,
@@ -374,7 +378,9 @@ pub fn compare(
         Ok(driver::Finish::Complete) => Status::Complete,
     };
     if failure.is_none() {
-        if let Err(e) = measure_speed(cfg, &mut comp, progress) {
+        let timed = measure_speed(cfg, &mut comp, progress)
+            .and_then(|()| latency::measure_whole(cfg, &model, &mut comp, progress));
+        if let Err(e) = timed {
             comp.status = Status::Failed;
             comp.status_detail = Some(e.to_string());
             failure = Some(e);
@@ -641,6 +647,7 @@ mod tests {
             out_dir: "o".into(),
             keep_models: false,
             speed_batch: None,
+            time_whole: false,
             focus: None,
             globs: (vec![], vec![]),
         };

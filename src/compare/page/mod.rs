@@ -6,7 +6,9 @@
 //! Sections, top to bottom, one module each: title and provenance, and the
 //! validation caution (`header`); the summary table, target × method
 //! (`summary`); error against sparsity, one line per series with N:M
-//! patterns in a side panel on the same y axis (`curves`); errors per layer
+//! patterns in a side panel on the same y axis (`curves`); end-to-end
+//! quality against measured whole-model speedup, when timed (`frontier`);
+//! errors per layer
 //! at the focus target (`per_layer`); notes on calibration, settings,
 //! sources and how to read (`notes`); and every figure in a collapsed table
 //! (`all_figures`). Each section reads the `View` built once here (series
@@ -24,6 +26,7 @@
 
 mod all_figures;
 mod curves;
+mod frontier;
 mod header;
 mod notes;
 mod per_layer;
@@ -70,6 +73,7 @@ pub fn render(sources: &[Source], focus: Option<&str>) -> String {
     header::section(&mut h, &v, &title);
     summary::section(&mut h, &v);
     curves::section(&mut h, &v);
+    frontier::section(&mut h, &v);
     per_layer::section(&mut h, &v);
     notes::section(&mut h, &v);
     all_figures::section(&mut h, &v);
