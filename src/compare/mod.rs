@@ -632,6 +632,7 @@ mod tests {
             threads: 1,
             l0: Default::default(),
             trace: false,
+            certify: None,
             eval: None,
         };
         let cfg = CompareConfig {

@@ -227,13 +227,18 @@ fn verified_shift(m: MatRef<'_, f64>, s: &[f64], guess: f64) -> f64 {
         if t <= 0.0 || !t.is_finite() {
             continue;
         }
-        let b = Mat::from_fn(n, n, |i, j| {
-            if i == j {
-                m[(i, i)] * (1.0 - eta) - t * s[i]
-            } else {
-                m[(i, j)]
-            }
-        });
+        let b =
+            Mat::from_fn(
+                n,
+                n,
+                |i, j| {
+                    if i == j {
+                        m[(i, i)] * (1.0 - eta) - t * s[i]
+                    } else {
+                        m[(i, j)]
+                    }
+                },
+            );
         if b.llt(Side::Lower).is_ok() {
             return t;
         }
@@ -330,7 +335,12 @@ struct Cg {
 
 impl Cg {
     fn new(rows: usize, n: usize) -> Self {
-        Cg { p: vec![0.0; rows * n], q: vec![0.0; rows * n], s: vec![0.0; rows * n], norm: vec![0.0; rows] }
+        Cg {
+            p: vec![0.0; rows * n],
+            q: vec![0.0; rows * n],
+            s: vec![0.0; rows * n],
+            norm: vec![0.0; rows],
+        }
     }
 }
 
@@ -429,10 +439,12 @@ impl Ascent {
         let (mut a, mut s) = (Vec::new(), Vec::new());
         for row in 0..self.c.len() {
             let rg = row * n..(row + 1) * n;
-            let r: Vec<f64> = self.b[rg.clone()].iter().zip(&self.u[rg.clone()]).map(|(b, u)| b - u).collect();
+            let r: Vec<f64> =
+                self.b[rg.clone()].iter().zip(&self.u[rg.clone()]).map(|(b, u)| b - u).collect();
             let p: Vec<f64> = (0..n).map(|i| w[rg.start + i] - self.y[rg.start + i]).collect();
-            let q: Vec<f64> =
-                (0..n).map(|i| self.b[rg.start + i] - d[i] * w[rg.start + i] - self.u[rg.start + i]).collect();
+            let q: Vec<f64> = (0..n)
+                .map(|i| self.b[rg.start + i] - d[i] * w[rg.start + i] - self.u[rg.start + i])
+                .collect();
             let yr = &self.y[rg.clone()];
             let yu: f64 = yr.iter().zip(&self.u[rg.clone()]).map(|(y, u)| y * u).sum();
             let yq: f64 = yr.iter().zip(&q).map(|(y, q)| y * q).sum();
@@ -483,7 +495,11 @@ impl Ascent {
             // Directions p = z∘r/d − y of the open rows, compacted.
             let dir = |&row: &usize| -> Vec<f64> {
                 let rg = row * n..(row + 1) * n;
-                let r: Vec<f64> = self.b[rg.clone()].iter().zip(&self.u[rg.clone()]).map(|(b, u)| b - u).collect();
+                let r: Vec<f64> = self.b[rg.clone()]
+                    .iter()
+                    .zip(&self.u[rg.clone()])
+                    .map(|(b, u)| b - u)
+                    .collect();
                 let a: Vec<f64> = r.iter().zip(d).map(|(ri, di)| ri * ri / di).collect();
                 let scale = {
                     let mut v = a.clone();
@@ -539,14 +555,21 @@ impl Ascent {
             let step = |(x, &row): (usize, &usize)| -> (f64, f64) {
                 let rg = row * n..(row + 1) * n;
                 let (px, qx) = (&p[x * n..(x + 1) * n], &q[x * n..(x + 1) * n]);
-                let r: Vec<f64> = self.b[rg.clone()].iter().zip(&self.u[rg.clone()]).map(|(b, u)| b - u).collect();
+                let r: Vec<f64> = self.b[rg.clone()]
+                    .iter()
+                    .zip(&self.u[rg.clone()])
+                    .map(|(b, u)| b - u)
+                    .collect();
                 let yr = &self.y[rg.clone()];
                 let yu: f64 = yr.iter().zip(&self.u[rg]).map(|(y, u)| y * u).sum();
                 let yq: f64 = yr.iter().zip(qx).map(|(y, q)| y * q).sum();
                 let pq: f64 = px.iter().zip(qx).map(|(p, q)| p * q).sum();
                 let (mut a, mut s) = (Vec::with_capacity(n), Vec::with_capacity(n));
                 let c = self.c[row];
-                golden(|t| row_value(t, c, (yu, yq, pq), &r, qx, d, g, fix, &mut a, &mut s), self.reach[row])
+                golden(
+                    |t| row_value(t, c, (yu, yq, pq), &r, qx, d, g, fix, &mut a, &mut s),
+                    self.reach[row],
+                )
             };
             let steps: Vec<(f64, f64)> = if parallel {
                 active.par_iter().enumerate().map(step).collect()
@@ -637,12 +660,14 @@ pub fn certify(
         .map(|r| {
             let rg = r * n..(r + 1) * n;
             let (y, u, b) = (&st.y[rg.clone()], &st.u[rg.clone()], &st.b[rg]);
-            let v: f64 = (0..n).map(|i| -2.0 * b[i] * y[i] + y[i] * u[i] + d[i] * y[i] * y[i]).sum();
+            let v: f64 =
+                (0..n).map(|i| -2.0 * b[i] * y[i] + y[i] * u[i] + d[i] * y[i] * y[i]).sum();
             (st.c[r] + v).max(0.0)
         })
         .collect();
     let objective: f64 = f.iter().sum();
-    let gap_of = |lb: f64| if objective > 0.0 { ((objective - lb) / objective).max(0.0) } else { 0.0 };
+    let gap_of =
+        |lb: f64| if objective > 0.0 { ((objective - lb) / objective).max(0.0) } else { 0.0 };
     if d.iter().all(|&x| x <= 0.0) || rows == 0 || n == 0 {
         return Certificate {
             lower_bound: 0.0,
@@ -802,7 +827,13 @@ fn support_value(a: MatRef<'_, f64>, b: &[f64], c: f64, s: &[usize]) -> Option<f
 /// # Panics
 /// When `a` is not `n x n` for `n = w.len()`.
 #[track_caller]
-pub fn branch_and_bound(a: MatRef<'_, f64>, lambda: f64, w: &[f64], k: usize, start: &[usize]) -> Exact {
+pub fn branch_and_bound(
+    a: MatRef<'_, f64>,
+    lambda: f64,
+    w: &[f64],
+    k: usize,
+    start: &[usize],
+) -> Exact {
     let n = w.len();
     assert_eq!((a.nrows(), a.ncols()), (n, n), "A must be n x n");
     let k = k.min(n);

@@ -30,8 +30,9 @@ fn enum_row(a: &Mat<f64>, w: &[f64], k: usize, group: Option<(usize, usize)>) ->
         let s: Vec<usize> = (0..n).filter(|&j| mask >> j & 1 == 1).collect();
         let ok = match group {
             None => s.len() == k,
-            Some((keep, m)) => (0..n / m)
-                .all(|g| s.iter().filter(|&&j| j / m == g).count() == keep.min(m)),
+            Some((keep, m)) => {
+                (0..n / m).all(|g| s.iter().filter(|&&j| j / m == g).count() == keep.min(m))
+            }
         };
         if ok {
             best = best.min(lu_value(a, w, &s));
@@ -158,7 +159,8 @@ fn bound_never_exceeds_the_enumerated_optimum() {
         let start = magnitude_refit(&w, &a, pattern);
         for split in [Split::Scaled, Split::Uniform, Split::Ridge] {
             let p = CertifyParams { split, ..CertifyParams::default() };
-            let cert = certify(w.as_ref(), a.as_ref(), lambda, start.as_ref(), pattern, &p, Par::Seq);
+            let cert =
+                certify(w.as_ref(), a.as_ref(), lambda, start.as_ref(), pattern, &p, Par::Seq);
             let tol = 1e-9 * dense;
             assert!(
                 cert.lower_bound <= exact + tol,
@@ -199,7 +201,11 @@ fn branch_and_bound_finds_the_enumerated_optimum() {
             let start: Vec<usize> = (0..k).collect();
             let got = branch_and_bound(a.as_ref(), lambda, &wr, k, &start);
             let scale = want.abs().max(1e-300);
-            assert!((got.value - want).abs() <= 1e-9 * scale, "case {case} k={k}: {} vs {want}", got.value);
+            assert!(
+                (got.value - want).abs() <= 1e-9 * scale,
+                "case {case} k={k}: {} vs {want}",
+                got.value
+            );
             let again = lu_value(&a, &wr, &got.support);
             assert!((again - want).abs() <= 1e-9 * scale, "support value {again} vs {want}");
             assert!(got.support.len() <= k);
@@ -232,8 +238,15 @@ fn independent_inputs_are_certified_optimal() {
         want += cost[k..].iter().sum::<f64>();
     }
     let start = magnitude_refit(&w, &a, pattern);
-    let cert =
-        certify(w.as_ref(), a.as_ref(), lambda, start.as_ref(), pattern, &CertifyParams::default(), Par::Seq);
+    let cert = certify(
+        w.as_ref(),
+        a.as_ref(),
+        lambda,
+        start.as_ref(),
+        pattern,
+        &CertifyParams::default(),
+        Par::Seq,
+    );
     assert!(cert.lower_bound <= want * (1.0 + 1e-12), "{} > {want}", cert.lower_bound);
     assert!(cert.lower_bound >= want * (1.0 - 1e-6), "{} vs {want}", cert.lower_bound);
 }
