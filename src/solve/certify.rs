@@ -60,7 +60,8 @@ pub enum Split {
 /// Settings of [`certify`].
 #[derive(Clone, Debug, PartialEq)]
 pub struct CertifyParams {
-    /// Most ascent iterations per layer. Default 30.
+    /// Most ascent iterations per layer. Default 5: on the BERT encoder 30
+    /// iterations cost twice the `l0` solve (see docs/benchmarks.md).
     pub max_iter: usize,
     /// Choice of `D`. Default [`Split::Scaled`].
     pub split: Split,
@@ -71,7 +72,7 @@ pub struct CertifyParams {
 
 impl Default for CertifyParams {
     fn default() -> Self {
-        CertifyParams { max_iter: 30, split: Split::Scaled, optimal_tol: 1e-6 }
+        CertifyParams { max_iter: 5, split: Split::Scaled, optimal_tol: 1e-6 }
     }
 }
 
@@ -274,7 +275,7 @@ fn min_eig_scaled(m: MatRef<'_, f64>, s: &[f64]) -> f64 {
 }
 
 /// The diagonal `d` of the split `A = B + diag(d)` with `B ⪰ 0` proven (see
-/// [`verified_shift`]), and its scale (see [`Certificate::split_scale`]).
+/// `verified_shift`), and its scale (see [`Certificate::split_scale`]).
 /// `lambda` is the ridge λ inside `A`.
 pub fn split_diagonal(a: MatRef<'_, f64>, lambda: f64, split: Split) -> (Vec<f64>, f64) {
     let n = a.nrows();

@@ -158,7 +158,7 @@ fn bound_never_exceeds_the_enumerated_optimum() {
         let dense: f64 = (0..rows).map(|r| lu_value(&a, &row(r), &[])).sum();
         let start = magnitude_refit(&w, &a, pattern);
         for split in [Split::Scaled, Split::Uniform, Split::Ridge] {
-            let p = CertifyParams { split, ..CertifyParams::default() };
+            let p = CertifyParams { split, max_iter: 30, ..CertifyParams::default() };
             let cert =
                 certify(w.as_ref(), a.as_ref(), lambda, start.as_ref(), pattern, &p, Par::Seq);
             let tol = 1e-9 * dense;
@@ -244,7 +244,7 @@ fn independent_inputs_are_certified_optimal() {
         lambda,
         start.as_ref(),
         pattern,
-        &CertifyParams::default(),
+        &CertifyParams { max_iter: 30, ..CertifyParams::default() },
         Par::Seq,
     );
     assert!(cert.lower_bound <= want * (1.0 + 1e-12), "{} > {want}", cert.lower_bound);
