@@ -578,3 +578,52 @@ fn threads_beyond_the_cpus_are_capped_with_a_note() {
     assert!(o.status.success(), "{}", stderr(&o));
     assert!(stderr(&o).contains("--threads 100000"), "{}", stderr(&o));
 }
+
+#[test]
+fn certify_adds_a_bound_under_the_objective() {
+    // `--certify` adds lower_bound, certified_gap and rows_proven_optimal to
+    // every layer; without it they are absent. The bound is proven in
+    // src/solve/certify.rs (tested there against enumeration); here the
+    // report must hold it as defined: 0 ≤ lower_bound ≤ objective_final,
+    // certified_gap = (objective_final − lower_bound) / objective_final,
+    // the share of optimal rows in [0, 1] (null for a per-layer budget).
+    let dir = Scratch::new("certify");
+    let (model, acts) = small_model(&dir);
+    for (target, scope, certify) in [
+        (["--sparsity", "0.5"], "row", true),
+        (["--sparsity", "0.5"], "layer", true),
+        (["--pattern", "1:2"], "row", true),
+        (["--sparsity", "0.5"], "row", false),
+    ] {
+        let out = dir.path("c.safetensors");
+        let rep = dir.path("c.json");
+        let _ = std::fs::remove_file(&out);
+        let _ = std::fs::remove_file(&rep);
+        let mut args = vec!["prune", s(&model), "--activations", s(&acts), target[0], target[1]];
+        if target[0] == "--sparsity" {
+            args.extend_from_slice(&["--scope", scope]);
+        }
+        args.extend_from_slice(&["-o", s(&out), "--report", s(&rep), "--quiet"]);
+        if certify {
+            args.push("--certify");
+        }
+        let o = lopper(&args);
+        assert!(o.status.success(), "{target:?} {scope}: {}", stderr(&o));
+        let r: serde_json::Value = serde_json::from_slice(&std::fs::read(&rep).unwrap()).unwrap();
+        for l in r["layers"].as_array().unwrap() {
+            if !certify {
+                assert!(l.get("lower_bound").is_none() && l.get("certified_gap").is_none());
+                continue;
+            }
+            let (lb, f) =
+                (l["lower_bound"].as_f64().unwrap(), l["objective_final"].as_f64().unwrap());
+            assert!(lb >= 0.0 && lb <= f * (1.0 + 1e-9), "{target:?} {scope}: {lb} vs {f}");
+            let gap = l["certified_gap"].as_f64().unwrap();
+            assert!((gap - (f - lb).max(0.0) / f).abs() <= 1e-12, "{gap}");
+            match l["rows_proven_optimal"].as_f64() {
+                Some(p) => assert!(scope == "row" && (0.0..=1.0).contains(&p), "{p}"),
+                None => assert_eq!(scope, "layer"),
+            }
+        }
+    }
+}

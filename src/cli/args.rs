@@ -222,6 +222,11 @@ pub struct PruneArgs {
     /// Write the local-search objective after every sweep as JSON lines.
     #[arg(long, value_name = "FILE")]
     pub trace: Option<PathBuf>,
+    /// Also prove, per layer, a lower bound on the best objective any mask
+    /// of the pattern could reach, and report the certified gap to it
+    /// (JSON: lower_bound, certified_gap, rows_proven_optimal).
+    #[arg(long)]
+    pub certify: bool,
     /// Calibration, solver, selection and run flags.
     #[command(flatten)]
     pub job: JobArgs,

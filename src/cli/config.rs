@@ -117,6 +117,7 @@ fn job_config(model: &std::path::Path, job: &JobArgs) -> Result<JobConfig> {
         threads: resolve_threads(job.run.threads),
         l0,
         trace: false,
+        certify: None,
         eval,
     })
 }
@@ -158,6 +159,7 @@ pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
     }
     let mut job = job_config(&a.model, &a.job)?;
     job.trace = a.trace.is_some();
+    job.certify = a.certify.then(crate::solve::certify::CertifyParams::default);
     Ok(PruneConfig {
         job,
         target: Target { method: a.method, pattern, cut },

@@ -572,6 +572,7 @@ pub(crate) mod testing {
             sweeps: 0,
             swaps: 0,
             init: None,
+            certificate: None,
         }
     }
 

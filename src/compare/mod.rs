@@ -638,6 +638,7 @@ mod tests {
             threads: 1,
             l0: Default::default(),
             trace: false,
+            certify: None,
             eval: None,
         };
         let cfg = CompareConfig {

@@ -79,6 +79,9 @@ pub struct JobConfig {
     pub l0: L0Params,
     /// Record the local-search objective after every sweep.
     pub trace: bool,
+    /// Prove a lower bound on each layer's best possible objective
+    /// (`None`: off, the default).
+    pub certify: Option<crate::solve::certify::CertifyParams>,
     /// End-to-end comparison on held-out text, when asked for.
     pub eval: Option<EvalOptions>,
 }

@@ -100,6 +100,26 @@ pub struct LayerReport {
     pub swaps: usize,
     /// Starting point of the local search, if any.
     pub init: Option<String>,
+    /// The proven lower bound on the best possible objective, when asked
+    /// for (`lopper prune --certify`); its fields sit in the layer's object.
+    #[serde(flatten)]
+    pub certificate: Option<Certified>,
+}
+
+/// A layer's certificate: a proven lower bound on the objective of the best
+/// mask its pattern allows (see [`crate::solve::certify`]).
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct Certified {
+    /// `L ≤ min Σ_r (w − ŵ)ᵀ A (w − ŵ)` over every allowed mask.
+    pub lower_bound: f64,
+    /// `(objective_final − lower_bound) / objective_final`: how much lower
+    /// the objective of any mask could possibly be, as a fraction.
+    pub certified_gap: f64,
+    /// Share of the rows proven optimal (their own gap within 1e-6);
+    /// `null` for a per-layer budget, where rows have no bound of their own.
+    pub rows_proven_optimal: Option<f64>,
+    /// Seconds spent on the bound (not in `seconds`).
+    pub bound_seconds: f64,
 }
 
 /// Totals over the pruned layers.
@@ -337,6 +357,28 @@ impl Summary {
     }
 }
 
+/// One line on the certified gaps of the layers that have one: median and
+/// worst, and the seconds the bounds took.
+fn certified_line(layers: &[LayerReport]) -> Option<String> {
+    let certs: Vec<&Certified> = layers.iter().filter_map(|l| l.certificate.as_ref()).collect();
+    if certs.is_empty() {
+        return None;
+    }
+    let mut gaps: Vec<f64> = certs.iter().map(|c| c.certified_gap).collect();
+    gaps.sort_by(f64::total_cmp);
+    let mid = gaps.len() / 2;
+    let median = if gaps.len() % 2 == 1 { gaps[mid] } else { 0.5 * (gaps[mid - 1] + gaps[mid]) };
+    let worst = gaps[gaps.len() - 1];
+    let secs: f64 = certs.iter().map(|c| c.bound_seconds).sum();
+    Some(format!(
+        "certified gap (no mask of the pattern can lower a layer's objective by more): median \
+         {:.3}%, worst {:.3}% over {} layers; bounds took {secs:.2} s",
+        100.0 * median,
+        100.0 * worst,
+        gaps.len()
+    ))
+}
+
 fn fmt_err(x: Option<f64>) -> String {
     match x {
         Some(v) if v.is_finite() => format!("{v:.4e}"),
@@ -381,6 +423,10 @@ impl Report {
         if search {
             head.push_str(&format!("  {:>6}  {:>7}", "sweeps", "swaps"));
         }
+        let certified = self.layers.iter().any(|l| l.certificate.is_some());
+        if certified {
+            head.push_str(&format!("  {:>9}  {:>7}", "cert. gap", "proven"));
+        }
         head.push_str(&format!("  {:>7}", "sec"));
         let rule = "-".repeat(head.chars().count());
         let _ = writeln!(out, "{head}");
@@ -399,6 +445,17 @@ impl Report {
             if search {
                 row.push_str(&format!("  {:>6}  {:>7}", l.sweeps, l.swaps));
             }
+            if certified {
+                let (gap, proven) = match &l.certificate {
+                    Some(c) => (
+                        format!("{:.3}%", 100.0 * c.certified_gap),
+                        c.rows_proven_optimal
+                            .map_or("-".to_string(), |p| format!("{:.1}%", 100.0 * p)),
+                    ),
+                    None => ("-".to_string(), "-".to_string()),
+                };
+                row.push_str(&format!("  {gap:>9}  {proven:>7}"));
+            }
             row.push_str(&format!("  {:>7.2}", l.seconds));
             let _ = writeln!(out, "{row}");
         }
@@ -415,6 +472,9 @@ impl Report {
             fmt_err(m.mean_rel_error_holdout),
             m.seconds
         );
+        if let Some(line) = certified_line(&self.layers) {
+            let _ = writeln!(out, "{line}");
+        }
         if let Some(st) = &self.structure {
             out.push_str(&st.render_table());
         }
@@ -461,6 +521,7 @@ mod tests {
             sweeps: 0,
             swaps: 0,
             init: None,
+            certificate: None,
         }
     }
 
@@ -511,6 +572,36 @@ mod tests {
         assert_eq!(v["settings"]["method"], "obs");
         let t = r.render_table();
         assert!(t.contains("50.00%") && t.contains("1.0000e-1"), "{t}");
+    }
+
+    #[test]
+    fn certificate_fields_sit_in_the_layer_and_read_back() {
+        let mut a = layer("a", 10, 0.1, Some(0.2));
+        a.certificate = Some(Certified {
+            lower_bound: 0.75,
+            certified_gap: 0.25,
+            rows_proven_optimal: Some(0.5),
+            bound_seconds: 0.1,
+        });
+        let mut b = layer("b", 10, 0.1, None);
+        b.certificate = Some(Certified {
+            lower_bound: 0.5,
+            certified_gap: 0.5,
+            rows_proven_optimal: None,
+            bound_seconds: 0.2,
+        });
+        let plain = layer("c", 10, 0.1, None);
+        let v = serde_json::to_value([&a, &b, &plain]).unwrap();
+        assert_eq!(v[0]["lower_bound"], 0.75);
+        assert_eq!(v[0]["certified_gap"], 0.25);
+        assert_eq!(v[0]["rows_proven_optimal"], 0.5);
+        assert!(v[1]["rows_proven_optimal"].is_null());
+        assert!(v[2].get("lower_bound").is_none() && v[2].get("certified_gap").is_none());
+        let back: Vec<LayerReport> = serde_json::from_value(v).unwrap();
+        assert_eq!(back, vec![a.clone(), b.clone(), plain.clone()]);
+        // Median of the gaps 0.25 and 0.5 is their mean; the worst is 0.5.
+        let line = certified_line(&[a, b, plain]).unwrap();
+        assert!(line.contains("median 37.500%, worst 50.000% over 2 layers"), "{line}");
     }
 
     #[test]

@@ -29,6 +29,7 @@
 
 pub mod baseline;
 pub mod budget;
+pub mod certify;
 pub mod group;
 pub mod l0;
 pub mod mask;

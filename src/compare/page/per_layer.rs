@@ -156,6 +156,55 @@ pub(super) fn section(h: &mut String, v: &View<'_>) {
         );
     }
     h.push_str("</ul></figure>\n");
+    certified(h, &runs);
+}
+
+/// The certified gaps of runs pruned with `--certify`: per series, the
+/// median and worst over layers and the layer of the worst. Nothing when no
+/// run carries a certificate.
+fn certified(h: &mut String, runs: &[(&Series, &Run)]) {
+    let rows: Vec<(&Series, Vec<(&str, f64)>)> = runs
+        .iter()
+        .map(|(s, r)| {
+            let gaps = r
+                .layers
+                .iter()
+                .filter_map(|l| l.certificate.as_ref().map(|c| (l.name.as_str(), c.certified_gap)))
+                .collect();
+            (*s, gaps)
+        })
+        .filter(|(_, g): &(&Series, Vec<_>)| !g.is_empty())
+        .collect();
+    if rows.is_empty() {
+        return;
+    }
+    h.push_str(
+        "<p class=\"lede\">Certified gap: a proven lower bound on the best objective any mask \
+         of the pattern could reach, per layer; no mask can lower the layer's objective by more \
+         than this fraction. A small gap says more search will not help that layer; a large one \
+         says the bound cannot tell.</p><ul class=\"worst\" data-chart=\"certified\">",
+    );
+    for (s, mut gaps) in rows {
+        gaps.sort_by(|a, b| a.1.total_cmp(&b.1));
+        let mid = gaps.len() / 2;
+        let median =
+            if gaps.len() % 2 == 1 { gaps[mid].1 } else { 0.5 * (gaps[mid - 1].1 + gaps[mid].1) };
+        let (worst_name, worst) = gaps[gaps.len() - 1];
+        let _ = write!(
+            h,
+            "<li data-median=\"{}\" data-worst=\"{}\">{}<strong>{}</strong>: median {:.3}%, \
+             worst {:.3}% (<code>{}</code>) over {} layers</li>",
+            exact(Some(median)),
+            exact(Some(worst)),
+            swatch(s),
+            esc(&s.label),
+            100.0 * median,
+            100.0 * worst,
+            esc(worst_name),
+            gaps.len()
+        );
+    }
+    h.push_str("</ul>\n");
 }
 
 #[cfg(test)]
@@ -188,6 +237,32 @@ mod tests {
         assert_eq!(h.matches("data-layer=\"l2\"").count(), 2);
         // The worst layer leads each series' list.
         assert!(h.contains("<strong>l0</strong>: <code>l2</code> 9.00e-2"), "{h}");
+    }
+
+    #[test]
+    fn certified_gaps_are_summarised_per_series() {
+        let row = Pattern::Unstructured { sparsity: 0.5, scope: Scope::Row };
+        let mut r = run(Method::L0, row, 0.1, Some(1.0), 3);
+        for (i, l) in r.layers.iter_mut().enumerate() {
+            l.certificate = Some(crate::report::Certified {
+                lower_bound: 1.0,
+                certified_gap: [0.02, 0.5, 0.1][i],
+                rows_proven_optimal: Some(0.25),
+                bound_seconds: 0.1,
+            });
+        }
+        let plain = run(Method::Obs, row, 0.1, Some(1.0), 3);
+        let src = sources(comparison(3, vec![r, plain]));
+        let mut h = String::new();
+        section(&mut h, &View::new(&src, Some("0.5")));
+        // Gaps 0.02, 0.1, 0.5: median 0.1, worst 0.5 on the second layer;
+        // the run without certificates gets no line.
+        assert!(h.contains("median 10.000%, worst 50.000% (<code>l1</code>) over 3 layers"), "{h}");
+        assert_eq!(h.matches("data-median=").count(), 1);
+        let mut h2 = String::new();
+        let plain = run(Method::Obs, row, 0.1, Some(1.0), 3);
+        section(&mut h2, &View::new(&sources(comparison(3, vec![plain])), Some("0.5")));
+        assert!(!h2.contains("Certified gap"));
     }
 
     #[test]
