@@ -218,6 +218,11 @@ pub struct PruneArgs {
     /// Write the local-search objective after every sweep as JSON lines.
     #[arg(long, value_name = "FILE")]
     pub trace: Option<PathBuf>,
+    /// Read the whole model into memory first and write the output at the
+    /// end, as lopper did before block streaming (several times the f32
+    /// model in memory; the same output bytes; for checking).
+    #[arg(long)]
+    pub whole_model: bool,
     /// Calibration, solver, selection and run flags.
     #[command(flatten)]
     pub job: JobArgs,
