@@ -493,11 +493,14 @@ pub fn model_targets(model: &Model, out: &Path) -> Result<(bool, Vec<PathBuf>), 
     model_targets_with(model, out).map(|(d, t)| (d, t.into_iter().map(|(p, _)| p).collect()))
 }
 
+/// An output file and the input tensor file it mirrors, if it is one.
+pub(crate) type Target<'m> = (PathBuf, Option<&'m TensorFile>);
+
 /// [`model_targets`] with each target's tensor file, if it is one.
 pub(crate) fn model_targets_with<'m>(
     model: &'m Model,
     out: &Path,
-) -> Result<(bool, Vec<(PathBuf, Option<&'m TensorFile>)>), WriteError> {
+) -> Result<(bool, Vec<Target<'m>>), WriteError> {
     let (to_dir, targets) = plan_targets(model, out);
     check_outputs(model, out, to_dir, targets.iter().map(|(p, _)| p.as_path()))?;
     let files = targets
