@@ -240,20 +240,20 @@ mod tests {
         // Two blocks; the second has the wider input. Byte counts by hand
         // from the formulas in the module docs.
         let blocks =
-            vec![vec![layer("a", [8, 4], 0)], vec![layer("b", [4, 8], 0), layer("c", [4, 8], 0)]];
+            vec![vec![layer("a", [8, 4], 0)], vec![layer("b", [4, 8], 0), layer("c", [2, 8], 0)]];
         let shapes = Shapes { blocks: &blocks, windows: Some((2, 3)), other: 100, disk: 7 };
         let e = estimate(&shapes, &[Method::Magnitude], false);
         assert_eq!(e.block, 1);
         assert_eq!(e.states, 2 * 2 * 3 * 4 * 4);
         assert_eq!(e.grams, 2 * 64 * 8);
-        assert_eq!(e.weights, 2 * 32 * 4);
+        assert_eq!(e.weights, (32 + 16) * 4);
         // 4·rect·8 + magnitude's sq + 3·rect (in f64 bytes).
         assert_eq!(e.solve, 4 * 32 * 8 + 64 * 8 + 3 * 32 * 8);
         assert_eq!(e.batch, 4096 * 8 * 4 * 8);
         assert_eq!(e.peak(), e.states + e.batch + 100 + e.weights + e.grams + e.solve);
         // The whole model holds every weight in f32 and f64.
         let w = estimate(&shapes, &[Method::Magnitude], true);
-        assert_eq!(w.weights, 3 * 32 * 12);
+        assert_eq!(w.weights, (32 + 32 + 16) * 12);
         assert!(e.line().contains("solving 'b'"), "{}", e.line());
     }
 }
