@@ -54,6 +54,7 @@ pub mod compare;
 pub mod deploy;
 pub mod driver;
 pub mod error;
+pub mod estimate;
 pub mod evaluate;
 pub mod io;
 pub mod outputs;

@@ -91,7 +91,7 @@ impl Bert {
         for i in 0..layers {
             let s = format!("{p}encoder.layer.{i}");
             let mut lin = |stem: String, di: usize, dout: usize| -> Result<String> {
-                Ok(linears.add(w.linear(&stem, di, dout, true, false)?))
+                linears.add_from(w, &stem, di, dout, true, false)
             };
             let qkv = [
                 lin(format!("{s}.attention.self.query"), d, d)?,
@@ -167,10 +167,10 @@ impl Network for Bert {
 
     fn units(&self, b: usize) -> Vec<Units> {
         let k = &self.blocks[b];
-        let (up, down) = (self.lin(&k.up), self.lin(&k.down));
+        let (up, down) = (self.linears.spec_at(&k.up), self.linears.spec_at(&k.down));
         let mut slices = units::producer(up, 1);
         slices.push(units::consumer(down, 1));
-        let count = up.shape().0;
+        let count = up.shape[0];
         vec![Units {
             kind: UnitKind::Neuron,
             count,
@@ -226,12 +226,12 @@ impl Network for Bert {
         Some(self.position.dims()[0])
     }
 
-    fn linear(&self, name: &str) -> Option<&Linear> {
-        self.linears.get(name)
+    fn linears(&self) -> &Linears {
+        &self.linears
     }
 
-    fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        self.linears.set(name, values)
+    fn linears_mut(&mut self) -> &mut Linears {
+        &mut self.linears
     }
 
     fn set_kernel(&mut self, name: &str, k: Option<super::kernel::Kernel>) -> Result<()> {

@@ -158,7 +158,7 @@ impl Gpt2 {
         for i in 0..c.layers {
             let s = format!("{p}h.{i}");
             let mut lin = |stem: String, di: usize, dout: usize| -> Result<String> {
-                Ok(linears.add(w.linear(&stem, di, dout, true, true)?))
+                linears.add_from(w, &stem, di, dout, true, true)
             };
             blocks.push(Block {
                 ln1: ln(&format!("{s}.ln_1"))?,
@@ -263,10 +263,10 @@ impl Network for Gpt2 {
 
     fn units(&self, b: usize) -> Vec<Units> {
         let k = &self.blocks[b];
-        let (fc, proj) = (self.linears.at(&k.c_fc), self.linears.at(&k.mlp_proj));
+        let (fc, proj) = (self.linears.spec_at(&k.c_fc), self.linears.spec_at(&k.mlp_proj));
         let mut slices = units::producer(fc, 1);
         slices.push(units::consumer(proj, 1));
-        let count = fc.shape().0;
+        let count = fc.shape[0];
         vec![Units {
             kind: UnitKind::Neuron,
             count,
@@ -304,12 +304,12 @@ impl Network for Gpt2 {
         Some(self.cfg.positions)
     }
 
-    fn linear(&self, name: &str) -> Option<&Linear> {
-        self.linears.get(name)
+    fn linears(&self) -> &Linears {
+        &self.linears
     }
 
-    fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        self.linears.set(name, values)
+    fn linears_mut(&mut self) -> &mut Linears {
+        &mut self.linears
     }
 
     fn set_kernel(&mut self, name: &str, k: Option<Kernel>) -> Result<()> {

@@ -269,8 +269,9 @@ pub struct Llama {
     embed: Tensor,
     blocks: Vec<Block>,
     norm: Tensor,
-    /// `[vocab, d]`; the embedding matrix itself when tied.
-    lm_head: Tensor,
+    /// `[vocab, d]`; the embedding matrix itself when tied; `None` when
+    /// built by block (calibration needs no logits).
+    lm_head: Option<Tensor>,
     linears: Linears,
 }
 
@@ -291,7 +292,7 @@ impl Llama {
             let s = format!("{p}layers.{i}");
             let mut lin = |stem: String, di: usize, dout: usize| -> Result<String> {
                 let bias = w.has(&format!("{stem}.bias"));
-                Ok(linears.add(w.linear(&stem, di, dout, bias, false)?))
+                linears.add_from(w, &stem, di, dout, bias, false)
             };
             let qkv = [
                 lin(format!("{s}.self_attn.q_proj"), d, c.heads * hd)?,
@@ -314,9 +315,12 @@ impl Llama {
         }
         let norm = w.tensor(&format!("{p}norm.weight"), &[d])?;
         let lm_head = if c.tie_word_embeddings || !w.has("lm_head.weight") {
-            embed.clone()
+            Some(embed.clone())
+        } else if w.lazy() {
+            w.check("lm_head.weight", &[c.vocab, d])?;
+            None
         } else {
-            w.tensor("lm_head.weight", &[c.vocab, d])?
+            Some(w.tensor("lm_head.weight", &[c.vocab, d])?)
         };
         let inv_freq = c.inv_freq();
         Ok(Llama { cfg: c, inv_freq, embed, blocks, norm, lm_head, linears })
@@ -402,17 +406,19 @@ impl Network for Llama {
     fn units(&self, b: usize) -> Vec<Units> {
         let k = &self.blocks[b];
         let c = &self.cfg;
-        let mut neurons: Vec<Slice> =
-            [&k.gate, &k.up].iter().flat_map(|n| units::producer(self.lin(n), 1)).collect();
-        neurons.push(units::consumer(self.lin(&k.down), 1));
+        let mut neurons: Vec<Slice> = [&k.gate, &k.up]
+            .iter()
+            .flat_map(|n| units::producer(self.linears.spec_at(n), 1))
+            .collect();
+        neurons.push(units::consumer(self.linears.spec_at(&k.down), 1));
         // A head unit: one key/value head and the `rep` consecutive query
         // heads that share it.
         let rep = c.heads / c.kv_heads;
-        let mut heads = units::producer(self.lin(&k.qkv[0]), rep * c.head_dim);
+        let mut heads = units::producer(self.linears.spec_at(&k.qkv[0]), rep * c.head_dim);
         for n in &k.qkv[1..] {
-            heads.extend(units::producer(self.lin(n), c.head_dim));
+            heads.extend(units::producer(self.linears.spec_at(n), c.head_dim));
         }
-        heads.push(units::consumer(self.lin(&k.o), rep * c.head_dim));
+        heads.push(units::consumer(self.linears.spec_at(&k.o), rep * c.head_dim));
         vec![
             Units {
                 kind: UnitKind::Head,
@@ -471,7 +477,13 @@ impl Network for Llama {
 
     fn output(&self, x: &Tensor) -> Result<Tensor> {
         let h = rms_norm(x, &self.norm, self.cfg.eps)?;
-        Ok(h.broadcast_matmul(&self.lm_head.t()?)?)
+        let head = self.lm_head.as_ref().ok_or_else(|| {
+            ArchError::new(
+                ArchErrorKind::Weights,
+                "the output head was not read (network built by block)",
+            )
+        })?;
+        Ok(h.broadcast_matmul(&head.t()?)?)
     }
 
     fn max_positions(&self) -> Option<usize> {
@@ -480,12 +492,12 @@ impl Network for Llama {
         self.cfg.window
     }
 
-    fn linear(&self, name: &str) -> Option<&Linear> {
-        self.linears.get(name)
+    fn linears(&self) -> &Linears {
+        &self.linears
     }
 
-    fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
-        self.linears.set(name, values)
+    fn linears_mut(&mut self) -> &mut Linears {
+        &mut self.linears
     }
 
     fn set_kernel(&mut self, name: &str, k: Option<Kernel>) -> Result<()> {

@@ -9,6 +9,12 @@
 //! (`crate::source::text`) calls [`Network::embed`], [`Network::block`] and
 //! [`Network::set_weight`].
 //!
+//! Weights are read one of two ways: [`load`] reads every tensor as f32 up
+//! front (evaluation, tests); [`load_by_block`] reads only the small tensors
+//! (norms, embeddings) up front and each block's linear weights when the
+//! caller reaches it ([`Network::load_block`], [`Network::unload_block`]),
+//! so a pruning run holds one block's f32 weights, not the model's.
+//!
 //! Families (from `model_type`):
 //! - [`bert`]: BERT-style encoders (`bert`): token/position/type embeddings,
 //!   post-norm blocks, GELU (erf form).
@@ -370,8 +376,38 @@ pub trait Network: Send + Sync {
         None
     }
 
-    /// A linear layer by weight tensor name.
-    fn linear(&self, name: &str) -> Option<&Linear>;
+    /// The family's linear layers.
+    fn linears(&self) -> &Linears;
+
+    /// The family's linear layers, to replace or (un)load weights.
+    fn linears_mut(&mut self) -> &mut Linears;
+
+    /// A linear layer by weight tensor name, if its weight is loaded.
+    fn linear(&self, name: &str) -> Option<&Linear> {
+        self.linears().get(name)
+    }
+
+    /// Shape and layout of a linear layer, loaded or not.
+    fn layer_spec(&self, name: &str) -> Option<&LinearSpec> {
+        self.linears().spec(name)
+    }
+
+    /// Read the linear weights of block `b` from `model` (a network from
+    /// [`load_by_block`]; a no-op when they are loaded).
+    ///
+    /// # Errors
+    /// An unreadable tensor (NaN or infinity included), named.
+    fn load_block(&mut self, b: usize, model: &Model) -> Result<()> {
+        let names: Vec<String> = self.groups(b).into_iter().flat_map(|g| g.layers).collect();
+        self.linears_mut().load(&names, model)
+    }
+
+    /// Drop the linear weights of block `b` (a network from
+    /// [`load_by_block`] only; an eager network keeps them).
+    fn unload_block(&mut self, b: usize) {
+        let names: Vec<String> = self.groups(b).into_iter().flat_map(|g| g.layers).collect();
+        self.linears_mut().unload(&names);
+    }
 
     /// The removable units of block `b` ([`units::Units`]): FFN neurons,
     /// and attention heads where the family's config can express fewer.
@@ -381,7 +417,9 @@ pub trait Network: Send + Sync {
     ///
     /// # Errors
     /// [`ArchErrorKind::Weights`] for an unknown name or a wrong length.
-    fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()>;
+    fn set_weight(&mut self, name: &str, values: &[f32]) -> Result<()> {
+        self.linears_mut().set(name, values)
+    }
 
     /// Put a product kernel in place for a linear layer ([`kernel`]), or
     /// remove it with `None`.
@@ -431,8 +469,22 @@ pub fn model_dir(model: &Model) -> std::path::PathBuf {
 /// # Errors
 /// Config errors, unsupported families, and missing or misshapen tensors.
 pub fn load(model: &Model) -> Result<Box<dyn Network>> {
+    build(model, Weights::new(model))
+}
+
+/// Build the network like [`load`] but leave every block's linear weights
+/// in the file until [`Network::load_block`] (shapes are checked now). A
+/// decoder's output head is not read: such a network serves calibration,
+/// not [`Network::output`].
+///
+/// # Errors
+/// As [`load`].
+pub fn load_by_block(model: &Model) -> Result<Box<dyn Network>> {
+    build(model, Weights { model, lazy: true })
+}
+
+fn build(model: &Model, w: Weights<'_>) -> Result<Box<dyn Network>> {
     let cfg = ArchConfig::read(&model_dir(model))?;
-    let w = Weights::new(model);
     let net: Box<dyn Network> = match cfg.family {
         Family::Bert => Box::new(bert::Bert::new(&cfg, &w)?),
         Family::Llama => Box::new(llama::Llama::new(&cfg, &w)?),
@@ -494,12 +546,19 @@ fn check_blocks(cfg: &ArchConfig, model: &Model, net: &dyn Network) -> Result<()
 /// and checks shapes, with messages naming the tensor.
 pub struct Weights<'a> {
     model: &'a Model,
+    /// Linear weights are read later, block by block.
+    lazy: bool,
 }
 
 impl<'a> Weights<'a> {
-    /// Wrap a model.
+    /// Wrap a model; every tensor is read when asked for.
     pub fn new(model: &'a Model) -> Self {
-        Weights { model }
+        Weights { model, lazy: false }
+    }
+
+    /// Whether linear weights wait for [`Network::load_block`].
+    pub fn lazy(&self) -> bool {
+        self.lazy
     }
 
     /// Whether a tensor exists.
@@ -513,8 +572,8 @@ impl<'a> Weights<'a> {
         prefixes.iter().copied().find(|p| self.has(&format!("{p}{probe}")))
     }
 
-    /// Read a tensor of exactly `shape` as f32.
-    pub fn tensor(&self, name: &str, shape: &[usize]) -> Result<Tensor> {
+    /// Check that a tensor exists with exactly `shape`.
+    pub fn check(&self, name: &str, shape: &[usize]) -> Result<()> {
         let info = self.model.get(name).ok_or_else(|| {
             ArchError::new(
                 ArchErrorKind::Weights,
@@ -527,12 +586,18 @@ impl<'a> Weights<'a> {
                 format!("tensor '{name}' has shape {:?}; the config implies {shape:?}", info.shape),
             ));
         }
-        let data = self
-            .model
-            .read_f64(name)
+        Ok(())
+    }
+
+    /// Read a tensor of exactly `shape` as f32 (decoded straight from the
+    /// stored dtype, no f64 copy).
+    pub fn tensor(&self, name: &str, shape: &[usize]) -> Result<Tensor> {
+        self.check(name, shape)?;
+        let file = self.model.file_of(name).expect("checked above");
+        let data = file
+            .read_f32(name)
             .map_err(|e| ArchError::new(ArchErrorKind::Weights, e.to_string()))?;
-        let data: Vec<f32> = data.into_iter().map(|v| v as f32).collect();
-        Ok(Tensor::from_vec(data, shape, &Device::Cpu)?)
+        Ok(Tensor::from_slice(&data, shape, &Device::Cpu)?)
     }
 
     /// A linear layer stored `[d_out, d_in]` (or `[d_in, d_out]` when
@@ -556,31 +621,127 @@ impl<'a> Weights<'a> {
     }
 }
 
+/// Where a linear layer's weight is in the file and what shape it has.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct LinearSpec {
+    /// Tensor name stem (`<stem>.weight`, `<stem>.bias`).
+    pub stem: String,
+    /// `[d_out, d_in]`.
+    pub shape: [usize; 2],
+    /// It has a bias.
+    pub bias: bool,
+    /// The file stores the weight as `[d_in, d_out]`.
+    pub transposed: bool,
+}
+
 /// A named set of linear layers with checked replacement; the families keep
 /// their layers here so [`Network::linear`] and [`Network::set_weight`] are
-/// shared code.
+/// shared code. Built lazily ([`load_by_block`]), a layer has its spec but
+/// no weight until [`Linears::load`].
 #[derive(Clone, Debug, Default)]
 pub struct Linears {
+    specs: BTreeMap<String, LinearSpec>,
     by_name: BTreeMap<String, Linear>,
+    lazy: bool,
 }
 
 impl Linears {
     /// Add a layer; returns its name for the family's own bookkeeping.
     pub fn add(&mut self, l: Linear) -> String {
         let name = l.name.clone();
+        let (d_out, d_in) = l.shape();
+        let spec = LinearSpec {
+            stem: name.strip_suffix(".weight").unwrap_or(&name).to_string(),
+            shape: [d_out, d_in],
+            bias: l.bias.is_some(),
+            transposed: l.transposed,
+        };
+        self.specs.insert(name.clone(), spec);
         self.by_name.insert(name.clone(), l);
         name
     }
 
-    /// Look up by weight name.
+    /// Add the layer `<stem>.weight` of `w`'s model: read now, or (lazy
+    /// weights) only checked for shape and read by [`Linears::load`].
+    ///
+    /// # Errors
+    /// A missing or misshapen weight or bias, named.
+    pub fn add_from(
+        &mut self,
+        w: &Weights<'_>,
+        stem: &str,
+        d_in: usize,
+        d_out: usize,
+        bias: bool,
+        transposed: bool,
+    ) -> Result<String> {
+        if !w.lazy {
+            return Ok(self.add(w.linear(stem, d_in, d_out, bias, transposed)?));
+        }
+        let name = format!("{stem}.weight");
+        w.check(&name, &if transposed { [d_in, d_out] } else { [d_out, d_in] })?;
+        if bias {
+            w.check(&format!("{stem}.bias"), &[d_out])?;
+        }
+        self.lazy = true;
+        let spec = LinearSpec { stem: stem.to_string(), shape: [d_out, d_in], bias, transposed };
+        self.specs.insert(name.clone(), spec);
+        Ok(name)
+    }
+
+    /// Read the weights of `names` that are not loaded.
+    ///
+    /// # Errors
+    /// An unknown name or an unreadable tensor.
+    pub fn load(&mut self, names: &[String], model: &Model) -> Result<()> {
+        let w = Weights::new(model);
+        for name in names {
+            if self.by_name.contains_key(name) {
+                continue;
+            }
+            let s = self.spec(name).ok_or_else(|| {
+                ArchError::new(ArchErrorKind::Weights, format!("no linear layer '{name}'"))
+            })?;
+            let [d_out, d_in] = s.shape;
+            let l = w.linear(&s.stem, d_in, d_out, s.bias, s.transposed)?;
+            self.by_name.insert(name.clone(), l);
+        }
+        Ok(())
+    }
+
+    /// Drop the weights of `names` when the set was built lazily.
+    pub fn unload(&mut self, names: &[String]) {
+        if self.lazy {
+            for n in names {
+                self.by_name.remove(n);
+            }
+        }
+    }
+
+    /// Look up a loaded layer by weight name.
     pub fn get(&self, name: &str) -> Option<&Linear> {
         self.by_name.get(name)
+    }
+
+    /// Shape and layout by weight name, loaded or not.
+    pub fn spec(&self, name: &str) -> Option<&LinearSpec> {
+        self.specs.get(name)
+    }
+
+    /// The spec of a layer the family registered itself.
+    ///
+    /// # Panics
+    /// If the family never added it (a bug, not an input error).
+    #[track_caller]
+    pub fn spec_at(&self, name: &str) -> &LinearSpec {
+        self.specs.get(name).unwrap_or_else(|| panic!("layer '{name}' was never added"))
     }
 
     /// Look up a layer the family registered itself.
     ///
     /// # Panics
-    /// If the family never added it (a bug, not an input error).
+    /// If the family never added it, or it is not loaded (bugs, not input
+    /// errors).
     #[track_caller]
     pub fn at(&self, name: &str) -> &Linear {
         self.by_name.get(name).unwrap_or_else(|| panic!("layer '{name}' was never added"))

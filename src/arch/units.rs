@@ -21,7 +21,7 @@
 //!   `hidden / heads`, so fewer heads cannot be written there
 //!   ([`head_limit`]).
 
-use super::{ArchConfig, ArchError, ArchErrorKind, Family, Linear, Result};
+use super::{ArchConfig, ArchError, ArchErrorKind, Family, LinearSpec, Result};
 use serde_json::Value;
 
 /// What a unit is.
@@ -73,17 +73,18 @@ pub struct Units {
 
 /// Slices of a producer: its weight rows (storage axis 0, or 1 when stored
 /// `[d_in, d_out]`) and its bias.
-pub(crate) fn producer(l: &Linear, per_unit: usize) -> Vec<Slice> {
-    let mut v = vec![Slice { tensor: l.name.clone(), axis: usize::from(l.transposed), per_unit }];
-    if l.bias.is_some() {
-        v.push(Slice { tensor: bias_name(&l.name), axis: 0, per_unit });
+pub(crate) fn producer(l: &LinearSpec, per_unit: usize) -> Vec<Slice> {
+    let name = format!("{}.weight", l.stem);
+    let mut v = vec![Slice { tensor: name.clone(), axis: usize::from(l.transposed), per_unit }];
+    if l.bias {
+        v.push(Slice { tensor: bias_name(&name), axis: 0, per_unit });
     }
     v
 }
 
 /// The consumer's input columns (storage axis 1, or 0 when transposed).
-pub(crate) fn consumer(l: &Linear, per_unit: usize) -> Slice {
-    Slice { tensor: l.name.clone(), axis: usize::from(!l.transposed), per_unit }
+pub(crate) fn consumer(l: &LinearSpec, per_unit: usize) -> Slice {
+    Slice { tensor: format!("{}.weight", l.stem), axis: usize::from(!l.transposed), per_unit }
 }
 
 /// `stem.weight` → `stem.bias`.

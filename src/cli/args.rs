@@ -227,6 +227,11 @@ pub struct PruneArgs {
     /// (JSON: lower_bound, certified_gap, rows_proven_optimal).
     #[arg(long)]
     pub certify: bool,
+    /// Read the whole model into memory first and write the output at the
+    /// end, as lopper did before block streaming (several times the f32
+    /// model in memory; the same output bytes; for checking).
+    #[arg(long)]
+    pub whole_model: bool,
     /// Calibration, solver, selection and run flags.
     #[command(flatten)]
     pub job: JobArgs,

@@ -100,6 +100,7 @@ fn job_config(model: &std::path::Path, job: &JobArgs) -> Result<JobConfig> {
             seq_len: c.seq_len,
             seed: c.seed.unwrap_or(0),
             propagate: !c.no_propagate,
+            by_block: true,
         }),
         _ => return Err(Error::usage("give exactly one of --activations and --text")),
     };
@@ -160,7 +161,11 @@ pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
     let mut job = job_config(&a.model, &a.job)?;
     job.trace = a.trace.is_some();
     job.certify = a.certify.then(crate::solve::certify::CertifyParams::default);
+    if let Calibration::Text(t) = &mut job.calibration {
+        t.by_block = !a.whole_model;
+    }
     Ok(PruneConfig {
+        whole_model: a.whole_model,
         job,
         target: Target { method: a.method, pattern, cut },
         output: a.output.clone(),

@@ -94,6 +94,16 @@ fn prune(a: &args::PruneArgs) -> Result<()> {
     let cfg = config::prune_config(a)?;
     set_threads(cfg.job.threads);
     let bar = progress::bar(a.job.run.quiet, "pruning", "layers");
+    // Ctrl-C / SIGTERM: remove the temporaries of the outputs (written
+    // block by block) and stop; nothing new is left behind.
+    let b = bar.clone();
+    let _ = ctrlc::set_handler(move || {
+        crate::io::remove_temporaries();
+        b.abandon();
+        eprintln!("lopper: interrupted; no output was written");
+        std::process::exit(EXIT_INTERRUPTED);
+    });
+    let blocks = std::cell::Cell::new((0usize, std::time::Instant::now()));
     let on_progress = |p: Progress<'_>| match p {
         Progress::Start(n) => bar.set_length(n as u64),
         Progress::Solve { done, layer, .. } => {
@@ -113,7 +123,21 @@ fn prune(a: &args::PruneArgs) -> Result<()> {
                 bar.suspend(|| eprintln!("lopper: {n}"));
             }
         }
-        Progress::Statistics(_) | Progress::Done(_) => {}
+        Progress::Statistics(label) => {
+            // Per block: the time per block so far gives the time left.
+            let (n, t0) = blocks.get();
+            let eta = match (n, bar.length()) {
+                (0, _) | (_, None | Some(0)) => String::new(),
+                (_, Some(len)) => {
+                    let done = bar.position().max(1) as f64;
+                    let left = t0.elapsed().as_secs_f64() / done * (len as f64 - done);
+                    format!(" (about {} left)", progress::duration(left))
+                }
+            };
+            blocks.set((n + 1, t0));
+            bar.set_message(format!("{label}: statistics{eta}"));
+        }
+        Progress::Done(k) => bar.set_position(k as u64),
     };
     let report = driver::prune(&cfg, &on_progress);
     bar.finish_and_clear();

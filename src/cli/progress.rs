@@ -40,3 +40,23 @@ pub(super) fn gauge(quiet: bool) -> ProgressBar {
     );
     bar
 }
+
+/// Seconds as `2h 05m`, `3m 10s` or `12s`.
+pub(super) fn duration(secs: f64) -> String {
+    let s = secs.max(0.0).round() as u64;
+    match (s / 3600, s % 3600 / 60, s % 60) {
+        (0, 0, s) => format!("{s}s"),
+        (0, m, s) => format!("{m}m {s:02}s"),
+        (h, m, _) => format!("{h}h {m:02}m"),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn durations_read_in_the_largest_units() {
+        assert_eq!(super::duration(12.4), "12s");
+        assert_eq!(super::duration(190.0), "3m 10s");
+        assert_eq!(super::duration(7500.0), "2h 05m");
+    }
+}

@@ -562,6 +562,8 @@ pub(crate) mod testing {
             sparsity: 0.5,
             rel_error: err,
             rel_error_holdout: held.map(|h| h * err),
+            rel_error_stored: None,
+            rel_error_holdout_stored: None,
             seconds: 0.25,
             calibration_rows: 9,
             holdout_rows: usize::from(held.is_some()),

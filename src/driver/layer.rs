@@ -242,6 +242,8 @@ pub fn solve_layer(
         rel_error,
         rel_error_holdout,
         seconds,
+        rel_error_stored: None,
+        rel_error_holdout_stored: None,
         calibration_rows: grams.calib.rows(),
         holdout_rows: grams.holdout.rows(),
         ridge_alpha: alpha,
@@ -395,6 +397,8 @@ fn as_is(layer: &Planned, w: MatRef<'_, f64>, grams: &LayerGrams, alpha: f64) ->
         sparsity: 1.0 - kept as f64 / (d_out * d_in).max(1) as f64,
         rel_error: 0.0,
         rel_error_holdout: None,
+        rel_error_stored: None,
+        rel_error_holdout_stored: None,
         seconds: 0.0,
         calibration_rows: grams.calib.rows(),
         holdout_rows: grams.holdout.rows(),
@@ -408,6 +412,32 @@ fn as_is(layer: &Planned, w: MatRef<'_, f64>, grams: &LayerGrams, alpha: f64) ->
         certificate: None,
     };
     Ok(Solved { values, report, trace: Vec::new() })
+}
+
+/// Set the errors of `s` (values `[d_out, d_in]` at `w`'s full shape) after
+/// rounding its values to `dtype`, the weights the written model holds:
+/// `‖X(W − round(Ŵ))ᵀ‖²_F / ‖XWᵀ‖²_F` on the calibration and held-out
+/// Gram matrices.
+pub(crate) fn stored_errors(
+    s: &mut Solved,
+    dtype: io::Dtype,
+    w: MatRef<'_, f64>,
+    grams: &LayerGrams,
+    par: Par,
+) {
+    let mut bytes = Vec::new();
+    if io::dtype::encode_f64(dtype, &s.values, &mut bytes).is_err() {
+        return;
+    }
+    let mut rounded = Vec::with_capacity(s.values.len());
+    if !io::dtype::decode_f64(dtype, &bytes, &mut rounded) {
+        return;
+    }
+    drop(bytes);
+    let what = MatRef::from_row_major_slice(&rounded, w.nrows(), w.ncols());
+    s.report.rel_error_stored = Some(objective::relative_error(w, what, grams.calib.matrix(), par));
+    s.report.rel_error_holdout_stored = (grams.holdout.rows() > 0)
+        .then(|| objective::relative_error(w, what, grams.holdout.matrix(), par));
 }
 
 /// Nonzeros of `values` as stored in `layer`'s dtype, or the error that

@@ -168,6 +168,11 @@ pub trait Sink {
         Ok(())
     }
 
+    /// Seconds spent writing results as they came ([`PhaseTimes::write`]).
+    fn write_seconds(&self) -> f64 {
+        0.0
+    }
+
     /// Asked between solves: stop now, leaving later solves undone.
     fn stop_requested(&self) -> bool {
         false
@@ -252,7 +257,9 @@ pub fn drive<'m>(
             None => open_source(cfg, targets, model)?,
         };
         let mut solve_secs = 0.0;
-        for b in 0..src.blocks().len() {
+        // Blocks after the last selected layer change nothing: not run.
+        let end = src.blocks().iter().rposition(|l| !l.is_empty()).map_or(0, |b| b + 1);
+        for b in 0..end {
             if sink.stop_requested() {
                 return Ok(Finish::Stopped);
             }
@@ -289,7 +296,8 @@ pub fn drive<'m>(
                         par,
                     )?;
                     solve_secs += t.elapsed().as_secs_f64();
-                    if let Some(solved) = solved {
+                    if let Some(mut solved) = solved {
+                        layer::stored_errors(&mut solved, layer.dtype, w.as_ref(), grams, par);
                         if src.follows_pruned() {
                             src.hand_back(layer, &solved.values)?;
                         }
@@ -301,7 +309,8 @@ pub fn drive<'m>(
             }
             src.finish_block(b)?;
         }
-        let timing = src.timing().map(|t| PhaseTimes { solve: solve_secs, ..t });
+        let write = sink.write_seconds();
+        let timing = src.timing().map(|t| PhaseTimes { solve: solve_secs, write, ..t });
         for &r in &cohort {
             sink.run_done(r, timing)?;
         }

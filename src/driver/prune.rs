@@ -27,11 +27,19 @@ pub struct PruneConfig {
     pub report: Option<PathBuf>,
     /// JSON-lines objective trace path.
     pub trace: Option<PathBuf>,
+    /// Hold every pruned tensor in memory and write the model at the end
+    /// (the reference path); otherwise tensors are written as their blocks
+    /// finish, unless the run needs them all at the end (`--eval-text`, a
+    /// structured cut).
+    pub whole_model: bool,
 }
 
-/// Keeps one run's results in memory until they are written.
+/// Keeps one run's results until they are written: the pruned weights go
+/// to `writer` as they come when there is one, else into `replaced`.
 #[derive(Default)]
-struct Collect {
+struct Collect<'m> {
+    writer: Option<io::StreamedModel<'m>>,
+    write_secs: f64,
     /// Pruned weights in storage orientation, by tensor name.
     replaced: BTreeMap<String, Vec<f64>>,
     layers: Vec<LayerReport>,
@@ -40,9 +48,19 @@ struct Collect {
     cuts: Vec<UnitCut>,
 }
 
-impl Sink for Collect {
+impl Sink for Collect<'_> {
     fn solved(&mut self, _: usize, layer: &Planned, s: Solved) -> Result<()> {
-        self.replaced.insert(layer.name.clone(), layer.to_storage(s.values));
+        let values = layer.to_storage(s.values);
+        match &mut self.writer {
+            Some(w) => {
+                let t = Instant::now();
+                w.put(&layer.name, &values).map_err(|e| flagged("-o", e))?;
+                self.write_secs += t.elapsed().as_secs_f64();
+            }
+            None => {
+                self.replaced.insert(layer.name.clone(), values);
+            }
+        }
         self.traces.push((layer.name.clone(), s.trace));
         self.layers.push(s.report);
         Ok(())
@@ -56,6 +74,10 @@ impl Sink for Collect {
     fn run_done(&mut self, _: usize, timing: Option<PhaseTimes>) -> Result<()> {
         self.timing = timing;
         Ok(())
+    }
+
+    fn write_seconds(&self) -> f64 {
+        self.write_secs
     }
 }
 
@@ -122,7 +144,20 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     let targets = [cfg.target];
     let source = open_source(job, &targets, &model)?;
     let text = source.description();
+    let planned: usize = source.blocks().iter().map(Vec::len).sum();
+    let estimate =
+        crate::estimate::check(&model, cfg.target, &cfg.output, source.as_ref(), cfg.whole_model)?;
+    progress(Progress::Note(&estimate.line()));
+    // Every output is staged (temporaries in the target folders) and
+    // renamed into place together once all are written; a failure removes
+    // every temporary and leaves nothing new.
+    let mut staged = io::Staged::new();
     let mut sink = Collect::default();
+    if !cfg.whole_model && job.eval.is_none() && cfg.target.cut.is_none() {
+        let meta = model_meta(job, cfg.target, planned);
+        let begin = io::StreamedModel::begin(&mut staged, &model, &cfg.output, &meta);
+        sink.writer = Some(begin.map_err(|e| flagged("-o", e))?);
+    }
     drive(job, &targets, &model, source, &mut sink, progress)?;
     let eval = match &job.eval {
         Some(opts) => {
@@ -153,11 +188,10 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         threads: job.threads,
     };
     let meta = model_meta(job, cfg.target, sink.layers.len());
-    // Every output is staged (temporaries in the target folders) and
-    // renamed into place together once all are written; a failure removes
-    // every temporary and leaves nothing new.
-    let mut staged = io::Staged::new();
-    let (written, structure) = if sink.cuts.is_empty() {
+    let (written, structure) = if let Some(w) = sink.writer.take() {
+        super::write_checked(&model, || w.finish(&mut staged, &meta))?;
+        (model_files, None)
+    } else if sink.cuts.is_empty() {
         let edits = io::Edits { replaced: &sink.replaced, ..io::Edits::default() };
         let stage = || io::stage_model(&mut staged, &model, &cfg.output, &edits, &meta);
         super::write_checked(&model, stage)?;

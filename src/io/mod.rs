@@ -32,6 +32,7 @@ pub mod dtype;
 mod file;
 mod model;
 mod pack;
+mod stream;
 mod write;
 
 use std::fmt;
@@ -101,9 +102,10 @@ pub fn escape(text: &str) -> std::borrow::Cow<'_, str> {
 pub use model::{Layout, Model};
 pub use pack::{read_pack, write_pack, PackedLayer, SPRIG_MAGIC, SPRIG_VERSION};
 pub use safetensors::Dtype;
+pub use stream::StreamedModel;
 pub use write::{
-    canonical_target, file_kind, folder_of, in_system_dir, is_stream, model_targets, stage_model,
-    write_atomic, write_model, write_model_edited, Edits, Staged,
+    canonical_target, file_kind, folder_of, in_system_dir, is_stream, model_targets,
+    remove_temporaries, stage_model, write_atomic, write_model, write_model_edited, Edits, Staged,
 };
 
 /// The accessors and the one-line `Display` (`path: tensor 'name': detail`)

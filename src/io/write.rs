@@ -51,6 +51,38 @@ pub fn write_atomic(
 
 static COUNTER: AtomicUsize = AtomicUsize::new(0);
 
+/// Temporaries of every uncommitted [`Staged`] set in the process, so a
+/// signal handler can remove them ([`remove_temporaries`]). A commit holds
+/// the lock while it renames, so a handler sees either all temporaries or
+/// none.
+static LIVE: std::sync::Mutex<Vec<PathBuf>> = std::sync::Mutex::new(Vec::new());
+
+fn live() -> std::sync::MutexGuard<'static, Vec<PathBuf>> {
+    LIVE.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+}
+
+/// Remove every temporary file and folder of uncommitted [`Staged`] sets;
+/// for a Ctrl-C / SIGTERM handler that then exits. Later commits in this
+/// process find their temporaries gone and fail.
+pub fn remove_temporaries() {
+    let mut l = live();
+    for p in l.drain(..) {
+        if p.is_dir() {
+            let _ = std::fs::remove_dir_all(&p);
+        } else {
+            let _ = std::fs::remove_file(&p);
+        }
+    }
+}
+
+fn unregister(paths: &mut Vec<PathBuf>, items: &[Staging]) {
+    paths.retain(|p| {
+        !items.iter().any(
+            |i| matches!(i, Staging::Temp { tmp, .. } | Staging::Folder { tmp, .. } if tmp == p),
+        )
+    });
+}
+
 /// A hidden name next to `path` for a temporary file or folder.
 fn temp_beside(path: &Path) -> Result<PathBuf, WriteError> {
     let Some(name) = path.file_name() else {
@@ -156,7 +188,9 @@ impl Staged {
             }
         }
         let tmp = temp_beside(dir)?;
+        let mut l = live();
         std::fs::create_dir(&tmp).map_err(|e| WriteError::io(dir, "create the folder", e))?;
+        l.push(tmp.clone());
         self.items.push(Staging::Folder { tmp, target: dir.to_owned() });
         Ok(())
     }
@@ -173,6 +207,41 @@ impl Staged {
         path: &Path,
         write: impl FnOnce(&mut BufWriter<File>) -> std::io::Result<()>,
     ) -> Result<(), WriteError> {
+        let (tmp, file, registered) = self.create(path)?;
+        let result = (|| {
+            let mut w = BufWriter::new(file);
+            write(&mut w).map_err(|e| WriteError::io(path, "write", e))?;
+            let file = w.into_inner().map_err(|e| WriteError::io(path, "write", e.into_error()))?;
+            file.sync_all().map_err(|e| WriteError::io(path, "sync", e))
+        })();
+        if let Err(e) = result {
+            if registered {
+                let item = self.items.pop().expect("registered above");
+                unregister(&mut live(), std::slice::from_ref(&item));
+            }
+            let _ = std::fs::remove_file(&tmp);
+            return Err(e);
+        }
+        self.targets.push(path.to_owned());
+        Ok(())
+    }
+
+    /// Stage file `path` to be filled by the caller at any offsets (a
+    /// model written tensor by tensor): its temporary is created now and
+    /// returned open; the caller must sync it before [`Staged::commit`].
+    ///
+    /// # Errors
+    /// As [`Staged::file`].
+    pub fn open(&mut self, path: &Path) -> Result<File, WriteError> {
+        let (_, file, _) = self.create(path)?;
+        self.targets.push(path.to_owned());
+        Ok(file)
+    }
+
+    /// Create the temporary of `path`, registered for removal; returns it,
+    /// the open file, and whether it is an item of its own (not inside a
+    /// staged folder).
+    fn create(&mut self, path: &Path) -> Result<(PathBuf, File, bool), WriteError> {
         let (tmp, item) = match self.mapped(path) {
             Some(m) => (m, None),
             None => {
@@ -192,6 +261,7 @@ impl Staged {
                 (tmp.clone(), Some(Staging::Temp { tmp, target: path.to_owned() }))
             }
         };
+        let mut l = live();
         let file = OpenOptions::new()
             .write(true)
             .create_new(true)
@@ -200,23 +270,10 @@ impl Staged {
         // Registered before writing, so a failure removes it.
         let registered = item.is_some();
         if let Some(item) = item {
+            l.push(tmp.clone());
             self.items.push(item);
         }
-        let result = (|| {
-            let mut w = BufWriter::new(file);
-            write(&mut w).map_err(|e| WriteError::io(path, "write", e))?;
-            let file = w.into_inner().map_err(|e| WriteError::io(path, "write", e.into_error()))?;
-            file.sync_all().map_err(|e| WriteError::io(path, "sync", e))
-        })();
-        if let Err(e) = result {
-            if registered {
-                self.items.pop();
-            }
-            let _ = std::fs::remove_file(&tmp);
-            return Err(e);
-        }
-        self.targets.push(path.to_owned());
-        Ok(())
+        Ok((tmp, file, registered))
     }
 
     /// Stage `bytes` for `path`: written straight into it at the commit
@@ -254,7 +311,9 @@ impl Staged {
             }
         }
         let mut folders = Vec::new();
+        let mut l = live();
         let items = std::mem::take(&mut self.items);
+        unregister(&mut l, &items);
         let mut rest = items.into_iter();
         while let Some(item) = rest.next() {
             let (tmp, target) = match &item {
@@ -269,6 +328,7 @@ impl Staged {
             }
             folders.push(folder_of(target).to_owned());
         }
+        drop(l);
         self.committed = true;
         // Make the renames durable; not every platform can sync a folder.
         folders.sort();
@@ -287,6 +347,7 @@ impl Drop for Staged {
         if self.committed {
             return;
         }
+        unregister(&mut live(), &self.items);
         for item in &self.items {
             match item {
                 Staging::Temp { tmp, .. } => {
@@ -429,9 +490,27 @@ pub fn write_model_edited(
 /// # Errors
 /// [`K::WouldOverwriteInput`], [`K::BadOutput`].
 pub fn model_targets(model: &Model, out: &Path) -> Result<(bool, Vec<PathBuf>), WriteError> {
+    model_targets_with(model, out).map(|(d, t)| (d, t.into_iter().map(|(p, _)| p).collect()))
+}
+
+/// An output file and the input tensor file it mirrors, if it is one.
+pub(crate) type Target<'m> = (PathBuf, Option<&'m TensorFile>);
+
+/// [`model_targets`] with each target's tensor file, if it is one.
+pub(crate) fn model_targets_with<'m>(
+    model: &'m Model,
+    out: &Path,
+) -> Result<(bool, Vec<Target<'m>>), WriteError> {
     let (to_dir, targets) = plan_targets(model, out);
     check_outputs(model, out, to_dir, targets.iter().map(|(p, _)| p.as_path()))?;
-    Ok((to_dir, targets.into_iter().map(|(p, _)| p).collect()))
+    let files = targets
+        .into_iter()
+        .map(|(p, r)| match r {
+            Role::Tensors(f) => (p, Some(f)),
+            _ => (p, None),
+        })
+        .collect();
+    Ok((to_dir, files))
 }
 
 /// What a planned output file is: a tensor file, the index, or another
@@ -487,6 +566,19 @@ pub fn stage_model(
     edits: &Edits<'_>,
     metadata: &BTreeMap<String, String>,
 ) -> Result<(), WriteError> {
+    stage_files(staged, model, out, edits, metadata, true)
+}
+
+/// [`stage_model`], with or without the tensor files (a caller that
+/// writes them itself, [`super::stream::StreamedModel`], stages the rest).
+pub(crate) fn stage_files(
+    staged: &mut Staged,
+    model: &Model,
+    out: &Path,
+    edits: &Edits<'_>,
+    metadata: &BTreeMap<String, String>,
+    tensors: bool,
+) -> Result<(), WriteError> {
     let encoded = encode_replaced(model, out, edits.replaced, edits.reshaped)?;
     if !edits.files.is_empty() && !matches!(model.layout(), Layout::Directory { .. }) {
         return Err(WriteError::new(
@@ -500,7 +592,7 @@ pub fn stage_model(
     let mut plan: Vec<(PathBuf, Job<'_>)> = Vec::new();
     let mut data_bytes = 0usize;
     for (path, role) in &targets {
-        if let Role::Tensors(f) = role {
+        if let (Role::Tensors(f), true) = (role, tensors) {
             let job = tensor_job(f, &encoded, edits.reshaped, metadata);
             if let Job::Tensors { parts, .. } = &job {
                 data_bytes += parts.iter().map(|p| p.len()).sum::<usize>();
@@ -625,6 +717,21 @@ fn encode_replaced<'a>(
         encoded.insert(name.as_str(), bytes);
     }
     Ok(encoded)
+}
+
+/// The header and the input's data parts, in file order, of tensor file
+/// `f` written with `metadata` and every tensor's bytes unchanged in
+/// length (same dtypes and shapes): what [`stage_model`] writes, before
+/// replacements.
+pub(crate) fn tensor_parts<'a>(
+    f: &'a TensorFile,
+    metadata: &BTreeMap<String, String>,
+) -> (Vec<u8>, Vec<&'a [u8]>) {
+    static NONE: BTreeMap<&str, Vec<u8>> = BTreeMap::new();
+    match tensor_job(f, &NONE, &EMPTY_SHAPES, metadata) {
+        Job::Tensors { header, parts } => (header, parts),
+        _ => unreachable!("tensor_job gives tensors"),
+    }
 }
 
 /// The header and data parts of one output tensor file.

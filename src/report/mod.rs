@@ -75,6 +75,14 @@ pub struct LayerReport {
     pub rel_error: f64,
     /// The same on held-out rows (`null` without held-out rows).
     pub rel_error_holdout: Option<f64>,
+    /// `rel_error` of the weights as stored: rounded to the tensor's dtype
+    /// (BF16/F16 keep 8/11 significant bits), what the written model
+    /// computes.
+    #[serde(default)]
+    pub rel_error_stored: Option<f64>,
+    /// `rel_error_holdout` of the weights as stored.
+    #[serde(default)]
+    pub rel_error_holdout_stored: Option<f64>,
     /// Wall-clock seconds for this layer (statistics + solve).
     #[serde(deserialize_with = "f64_or_nan")]
     pub seconds: f64,
@@ -139,6 +147,9 @@ pub struct Summary {
     pub mean_rel_error: f64,
     /// Mean of `rel_error_holdout` over layers that have held-out rows.
     pub mean_rel_error_holdout: Option<f64>,
+    /// Mean of `rel_error_stored` over layers that have it.
+    #[serde(default)]
+    pub mean_rel_error_stored: Option<f64>,
     /// Total wall-clock seconds.
     #[serde(deserialize_with = "f64_or_nan")]
     pub seconds: f64,
@@ -238,6 +249,14 @@ pub struct PhaseTimes {
     /// Solving the layers.
     #[serde(deserialize_with = "f64_or_nan")]
     pub solve: f64,
+    /// Reading weights from the model files into f32 (block by block, or
+    /// the whole model first).
+    #[serde(default)]
+    pub read: f64,
+    /// Encoding and writing pruned tensors as their blocks finish (the
+    /// final copy of the untouched tensors is in the total only).
+    #[serde(default)]
+    pub write: f64,
 }
 
 /// How far the pruned model's outputs are from the dense model's on text the
@@ -344,7 +363,11 @@ impl Summary {
         let n = calib.len().max(1) as f64;
         let held: Vec<f64> =
             layers.iter().filter_map(|l| l.rel_error_holdout).filter(|e| !e.is_nan()).collect();
+        let stored: Vec<f64> =
+            layers.iter().filter_map(|l| l.rel_error_stored).filter(|e| !e.is_nan()).collect();
         Summary {
+            mean_rel_error_stored: (!stored.is_empty())
+                .then(|| stored.iter().sum::<f64>() / stored.len() as f64),
             layers: layers.len(),
             kept,
             total,
@@ -417,8 +440,15 @@ impl Report {
         // The local search's counters only mean something for it.
         let search = s.method == "l0";
         let mut head = format!(
-            "{:<wname$}  {:>11}  {:>17}  {:>8}  {:>11}  {:>11}  {:>6}",
-            "layer", "d_out x d_in", "kept / total", "zeros", "err calib", "err held", "alpha"
+            "{:<wname$}  {:>11}  {:>17}  {:>8}  {:>11}  {:>11}  {:>11}  {:>6}",
+            "layer",
+            "d_out x d_in",
+            "kept / total",
+            "zeros",
+            "err calib",
+            "err held",
+            "err stored",
+            "alpha"
         );
         if search {
             head.push_str(&format!("  {:>6}  {:>7}", "sweeps", "swaps"));
@@ -433,13 +463,14 @@ impl Report {
         let _ = writeln!(out, "{rule}");
         for l in &self.layers {
             let mut row = format!(
-                "{:<wname$}  {:>11}  {:>17}  {:>7.2}%  {:>11}  {:>11}  {:>6}",
+                "{:<wname$}  {:>11}  {:>17}  {:>7.2}%  {:>11}  {:>11}  {:>11}  {:>6}",
                 crate::io::escape(&l.name),
                 format!("{}x{}", l.shape[0], l.shape[1]),
                 format!("{}/{}", l.kept, l.total),
                 100.0 * l.sparsity,
                 fmt_err(Some(l.rel_error)),
                 fmt_err(l.rel_error_holdout),
+                fmt_err(l.rel_error_stored),
                 l.ridge_alpha
             );
             if search {
@@ -481,8 +512,9 @@ impl Report {
         if let Some(t) = &self.timing {
             let _ = writeln!(
                 out,
-                "time: tokenize {:.2} s, forward {:.2} s, gram {:.2} s, solve {:.2} s",
-                t.tokenize, t.forward, t.gram, t.solve
+                "time: tokenize {:.2} s, read {:.2} s, forward {:.2} s, gram {:.2} s, solve {:.2} \
+                 s, write {:.2} s",
+                t.tokenize, t.read, t.forward, t.gram, t.solve, t.write
             );
         }
         if let Some(e) = &self.eval {
@@ -511,6 +543,8 @@ mod tests {
             sparsity: 1.0 - kept as f64 / 20.0,
             rel_error: err,
             rel_error_holdout: held,
+            rel_error_stored: None,
+            rel_error_holdout_stored: None,
             seconds: 0.5,
             calibration_rows: 90,
             holdout_rows: 10,

@@ -14,8 +14,11 @@
 //! other parts of the text than the fitted ones.
 //!
 //! Memory: the hidden states of all windows at the current block
-//! (`samples × seq_len × d` f32) plus the Gram matrices of one block; the
-//! activations of a group exist only for one batch at a time.
+//! (`samples × seq_len × d` f32, twice: inputs and outputs) plus the Gram
+//! matrices of one block; the activations of a group exist only for one
+//! batch at a time. With `by_block` (the default) the network holds only
+//! the current block's f32 linear weights, read from the memory map when
+//! the block is reached and dropped when it is finished.
 
 use super::{check_layer, BlockStats, LayerSource, PlanParams, Planned};
 use crate::arch::{self, Batch, Kind, Network};
@@ -43,6 +46,9 @@ pub struct TextSource {
     pub seed: u64,
     /// Feed each block the outputs of the already pruned blocks before it.
     pub propagate: bool,
+    /// Read each block's weights when it is reached and drop them after
+    /// ([`arch::load_by_block`]); `false` reads the whole model first.
+    pub by_block: bool,
 }
 
 /// Default `(samples, seq_len)` for a network kind: 128 × 128 tokens for
@@ -81,8 +87,8 @@ fn plan(model: &Model, net: &dyn Network, params: &PlanParams<'_>) -> Result<Vec
         for (gi, g) in net.groups(b).into_iter().enumerate() {
             for name in g.layers {
                 let info = model.get(&name).expect("the network was built from these tensors");
-                let lin = net.linear(&name).expect("group layers are registered");
-                let (d_out, d_in) = lin.shape();
+                let lin = net.layer_spec(&name).expect("group layers are registered");
+                let [d_out, d_in] = lin.shape;
                 if !params.selection.selects(&name, &[d_out, d_in], info.is_float()) {
                     continue;
                 }
@@ -161,7 +167,10 @@ pub fn windows(
 }
 
 /// A model run on windows of calibration text, one block at a time.
-pub struct TextCalibration {
+pub struct TextCalibration<'m> {
+    model: &'m Model,
+    /// Blocks' weights are read when reached.
+    by_block: bool,
     src: TextSource,
     holdout: f64,
     net: Box<dyn Network>,
@@ -177,16 +186,21 @@ pub struct TextCalibration {
     description: serde_json::Value,
 }
 
-impl TextCalibration {
+impl<'m> TextCalibration<'m> {
     /// Build the network, plan the layers, tokenize the text and embed the
     /// windows.
     ///
     /// # Errors
     /// An unsupported or broken model, a bad selection, text or tokenizer,
     /// or a layer no target fits.
-    pub fn open(model: &Model, src: &TextSource, params: &PlanParams<'_>) -> Result<Self> {
+    pub fn open(model: &'m Model, src: &TextSource, params: &PlanParams<'_>) -> Result<Self> {
         let mut timing = PhaseTimes::default();
-        let net = arch::load(model)?;
+        // Units (structured cuts) read every block's shapes from loaded
+        // weights, so structured runs read the whole model.
+        let by_block = src.by_block && !params.structured;
+        let t = Instant::now();
+        let net = if by_block { arch::load_by_block(model)? } else { arch::load(model)? };
+        timing.read += t.elapsed().as_secs_f64();
         let blocks = plan(model, net.as_ref(), params)?;
         let t = Instant::now();
         let (wins, total_tokens) = windows(model, net.as_ref(), src)?;
@@ -216,6 +230,8 @@ impl TextCalibration {
             "model_type": model_type,
         });
         Ok(TextCalibration {
+            model,
+            by_block,
             src: src.clone(),
             holdout: params.holdout,
             net,
@@ -230,7 +246,7 @@ impl TextCalibration {
     }
 }
 
-impl LayerSource for TextCalibration {
+impl LayerSource for TextCalibration<'_> {
     fn blocks(&self) -> &[Vec<Planned>] {
         &self.blocks
     }
@@ -244,6 +260,11 @@ impl LayerSource for TextCalibration {
     }
 
     fn statistics(&mut self, b: usize, par: Par) -> Result<BlockStats> {
+        if self.by_block {
+            let t = Instant::now();
+            self.net.load_block(b, self.model)?;
+            self.timing.read += t.elapsed().as_secs_f64();
+        }
         let t0 = Instant::now();
         let groups = self.net.groups(b);
         let mut grams: BTreeMap<usize, LayerGrams> = BTreeMap::new();
@@ -314,6 +335,9 @@ impl LayerSource for TextCalibration {
         }
         self.hidden = std::mem::take(&mut self.next);
         self.timing.forward += t.elapsed().as_secs_f64();
+        if self.by_block {
+            self.net.unload_block(b);
+        }
         Ok(())
     }
 
