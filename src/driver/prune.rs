@@ -1,6 +1,7 @@
 //! `lopper prune`: one run of the driver, then the pruned model, the trace
 //! and the report, written only when every layer succeeded.
 
+use super::allocate::{self, SpreadConfig};
 use super::shrink::shrink;
 use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target, UnitCut};
 use crate::error::Result;
@@ -27,6 +28,9 @@ pub struct PruneConfig {
     pub report: Option<PathBuf>,
     /// JSON-lines objective trace path.
     pub trace: Option<PathBuf>,
+    /// How an unstructured target is spread over the layers (`None`:
+    /// every layer at the target).
+    pub spread: Option<SpreadConfig>,
 }
 
 /// Keeps one run's results in memory until they are written.
@@ -62,7 +66,7 @@ impl Sink for Collect {
 /// The `lopper.*` metadata written into a pruned model.
 pub(crate) fn model_meta(
     job: &JobConfig,
-    target: Target,
+    target: &Target,
     layers: usize,
 ) -> BTreeMap<String, String> {
     let mut meta = BTreeMap::new();
@@ -119,7 +123,19 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         // Fail on a bad evaluation file before the long part.
         crate::tokenize::read_text(t)?;
     }
-    let targets = [cfg.target];
+    let mut target = cfg.target.clone();
+    let mut allocation = None;
+    if let (Some(spread), Some(overall)) = (cfg.spread, target.pattern.sparsity()) {
+        let scope = match target.pattern {
+            crate::solve::Pattern::Unstructured { scope, .. } => scope,
+            crate::solve::Pattern::NofM { .. } => unreachable!("has a sparsity"),
+        };
+        if let Some(a) = allocate::plan(job, &model, overall, scope, spread, progress)? {
+            target = allocate::allocated(target, &a);
+            allocation = Some(a.report);
+        }
+    }
+    let targets = [target];
     let source = open_source(job, &targets, &model)?;
     let text = source.description();
     let mut sink = Collect::default();
@@ -152,7 +168,10 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         text,
         threads: job.threads,
     };
-    let meta = model_meta(job, cfg.target, sink.layers.len());
+    let mut meta = model_meta(job, &cfg.target, sink.layers.len());
+    if let Some(a) = &allocation {
+        meta.insert("lopper.spread".to_string(), a.spread.clone());
+    }
     // Every output is staged (temporaries in the target folders) and
     // renamed into place together once all are written; a failure removes
     // every temporary and leaves nothing new.
@@ -199,6 +218,10 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     if let Some(path) = &cfg.report {
         outputs.push(path.display().to_string());
     }
+    if let Some(a) = &mut allocation {
+        let errors = sink.layers.iter().map(|l| (l.name.clone(), l.rel_error)).collect();
+        allocate::record_solved(a, &errors);
+    }
     let summary = Summary::of(&sink.layers, t0.elapsed().as_secs_f64());
     let report = Report {
         settings,
@@ -208,6 +231,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         timing: sink.timing,
         eval,
         structure,
+        allocation,
         notice: VALIDATION_NOTICE.to_string(),
     };
     if let Some(path) = &cfg.report {
