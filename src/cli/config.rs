@@ -189,7 +189,7 @@ fn spread_config(a: &SpreadArgs, pattern: Pattern, cut: bool) -> Result<Option<S
             a.spread
         )));
     }
-    if !(a.layer_min <= s && s <= a.layer_max) {
+    if !(a.layer_min..=a.layer_max).contains(&s) {
         return Err(Error::usage(format!(
             "--sparsity {s} must lie within --layer-min {} and --layer-max {}",
             a.layer_min, a.layer_max

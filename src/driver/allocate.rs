@@ -175,7 +175,7 @@ pub fn plan(
             spread.spread
         )));
     };
-    if !(spread.floor <= target && target <= spread.cap) {
+    if !(spread.floor..=spread.cap).contains(&target) {
         return Err(Error::usage(format!(
             "{flag}: the target {target} must lie within --layer-min {} and --layer-max {}",
             spread.floor, spread.cap

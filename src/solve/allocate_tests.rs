@@ -78,11 +78,13 @@ fn curve(rng: &mut SplitMix64, m: usize, k: usize, convex: bool) -> Curve {
 
 #[test]
 fn lower_hull_drops_points_above_chords() {
-    // Hand example: (1, 3) lies above the chord (0,0)–(2,2); (3, 3) lies
-    // below the chord (2,2)–(4,6) so it stays.
-    let p = [(0, 0.0), (1, 3.0), (2, 2.0), (3, 3.0), (4, 6.0)];
-    assert_eq!(lower_hull(&p), vec![(0, 0.0), (2, 2.0), (3, 3.0), (4, 6.0)]);
-    assert_eq!(interpolate(&p, 2.5), 2.5);
+    // Hand example: (1, 3) lies above the chord (0,0)–(2,2); (2, 2) lies
+    // below the chord (0,0)–(3,3.5) (2.33 at x = 2) and (3, 3.5) below
+    // (2,2)–(4,6) (4 at x = 3), so both stay. A point on a chord is dropped.
+    let p = [(0, 0.0), (1, 3.0), (2, 2.0), (3, 3.5), (4, 6.0)];
+    assert_eq!(lower_hull(&p), vec![(0, 0.0), (2, 2.0), (3, 3.5), (4, 6.0)]);
+    assert_eq!(lower_hull(&[(0, 0.0), (1, 1.0), (2, 2.0)]), vec![(0, 0.0), (2, 2.0)]);
+    assert_eq!(interpolate(&p, 2.5), 2.75);
 }
 
 #[test]
