@@ -316,8 +316,15 @@ pub fn plan(
                     let [d_out, _] = m.planned.shape;
                     let step = if scope == Scope::Row { d_out } else { 1 };
                     let mut points: Vec<(usize, f64)> = Vec::new();
+                    // Bounds in counts, rounded inwards so no layer leaves them.
+                    let (unit, times) = match scope {
+                        Scope::Row => (m.planned.shape[1], d_out),
+                        Scope::Layer => (d_out * m.planned.shape[1], 1),
+                    };
+                    let lo = (spread.floor * unit as f64).ceil() as usize * times;
+                    let hi = (spread.cap * unit as f64).floor() as usize * times;
                     for &(s, e) in &m.curve {
-                        let z = zeros_at(m.planned.shape, s, scope);
+                        let z = zeros_at(m.planned.shape, s, scope).clamp(lo, hi);
                         if points.last().is_none_or(|p| p.0 < z) {
                             points.push((z, m.sensitivity * e));
                         }
