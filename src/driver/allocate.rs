@@ -216,7 +216,8 @@ pub fn plan(
         GRID.iter().copied().filter(|&s| s > spread.floor && s < spread.cap).collect();
     grid.insert(0, spread.floor);
     grid.push(spread.cap);
-    for b in 0..src.blocks().len() {
+    // One entry of `inputs` per block of the network and of the source.
+    for (b, xs) in inputs.iter().enumerate() {
         let layers = src.blocks()[b].clone();
         if layers.is_empty() {
             src.finish_block(b)?;
@@ -262,7 +263,7 @@ pub fn plan(
                 let e = solve::objective::relative_error(w.as_ref(), pw.as_ref(), h, par);
                 let vals: Vec<f32> = to_rows(pw.as_ref()).iter().map(|&v| v as f32).collect();
                 net.set_weight(&layer.name, &vals)?;
-                let outs = inputs[b]
+                let outs = xs
                     .iter()
                     .map(|x| run_from(net.as_ref(), b, x))
                     .collect::<arch::Result<Vec<_>>>()?;
