@@ -143,7 +143,7 @@ pub fn estimate(shapes: &Shapes<'_>, methods: &[crate::solve::Method], whole: bo
 /// the run fit.
 pub fn check(
     model: &Model,
-    target: crate::driver::Target,
+    target: &crate::driver::Target,
     output: &Path,
     src: &dyn LayerSource,
     whole: bool,

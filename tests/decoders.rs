@@ -432,3 +432,68 @@ fn neurons_removed_with_activations_of_a_model_directory() {
     assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
     assert!(stderr(&o).contains("model.layers.1.mlp.down_proj.weight"), "{}", stderr(&o));
 }
+
+/// Zeros and weights over every layer a report lists, counted in the file.
+fn counted_zeros(st: &Setup, r: &Value, transposed: bool) -> Vec<(String, usize, usize)> {
+    let (pruned, _) = read_st(&st.out.join("model.safetensors"));
+    r["layers"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| {
+            let name = l["name"].as_str().unwrap().to_string();
+            let (_, shape, bytes) = &pruned[&name];
+            let z: usize = zeros_per_row(&as_f32(bytes), shape, transposed).iter().sum();
+            (name, z, shape[0] * shape[1])
+        })
+        .collect()
+}
+
+#[test]
+fn spread_targets_hit_the_overall_sparsity_and_keep_the_bounds() {
+    let st = setup("llama-spread", write_llama);
+    // Layer scope: every layer's count is free, so the zeros written equal
+    // round(0.6 · N) within one weight per layer (the check).
+    let r = prune(
+        &st,
+        &["--sparsity", "0.6", "--spread", "measured", "--scope", "layer", "--method", "obs"],
+    );
+    let counts = counted_zeros(&st, &r, false);
+    let n: usize = counts.iter().map(|c| c.2).sum();
+    let z: usize = counts.iter().map(|c| c.1).sum();
+    let want = (0.6 * n as f64).round() as usize;
+    assert!(z.abs_diff(want) <= counts.len(), "{z} zeros, want {want} ± {}", counts.len());
+    let a = &r["allocation"];
+    assert_eq!(a["spread"], "measured");
+    let rows = a["layers"].as_array().unwrap();
+    assert_eq!(rows.len(), counts.len());
+    let spread: Vec<f64> = rows.iter().map(|l| l["sparsity"].as_f64().unwrap()).collect();
+    assert!(spread.iter().any(|&s| (s - 0.6).abs() > 0.01), "not spread at all: {spread:?}");
+    for l in rows {
+        assert!(l["contribution_measured"].as_f64().unwrap() >= 0.0, "{l}");
+        assert!(l["sensitivity"].as_f64().unwrap() >= 0.0, "{l}");
+    }
+    // Row scope with bounds: every row of a layer keeps the same count, no
+    // layer leaves [0.3, 0.8], and the total misses by at most half a row
+    // budget of one layer (counts are multiples of d_out).
+    let r = prune(
+        &st,
+        &["--sparsity", "0.6", "--spread", "measured", "--layer-min", "0.3", "--layer-max", "0.8"],
+    );
+    let counts = counted_zeros(&st, &r, false);
+    let z: usize = counts.iter().map(|c| c.1).sum();
+    let widest = 48;
+    assert!(z.abs_diff(want) <= widest / 2, "{z} zeros, want {want}");
+    for (name, z, size) in &counts {
+        let s = *z as f64 / *size as f64;
+        assert!((0.3 - 1e-9..=0.8 + 1e-9).contains(&s), "{name}: {s}");
+    }
+    // The outlier baseline: per-block sparsities whose size-weighted mean is
+    // the target (Yin et al. 2024), so the total is within row rounding.
+    let r = prune(&st, &["--sparsity", "0.6", "--spread", "outlier", "--method", "obs"]);
+    let counts = counted_zeros(&st, &r, false);
+    let z: usize = counts.iter().map(|c| c.1).sum();
+    let rows: usize = counts.len() * widest;
+    assert!(z.abs_diff(want) <= rows / 2, "{z} zeros, want {want}");
+    assert_eq!(r["allocation"]["spread"], "outlier");
+}

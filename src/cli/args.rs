@@ -3,6 +3,7 @@
 //! [`CalibrationArgs`], [`SolverArgs`] and [`RunArgs`]. Validation into
 //! typed configs happens in [`super::config`].
 
+use crate::driver::allocate::Spread;
 use crate::driver::Ridge;
 use crate::solve::{Method, Scope};
 use clap::builder::PossibleValue;
@@ -73,6 +74,40 @@ impl ValueEnum for Scope {
         };
         Some(PossibleValue::new(self.name()).help(help))
     }
+}
+
+impl ValueEnum for Spread {
+    fn value_variants<'a>() -> &'a [Self] {
+        &[Spread::Uniform, Spread::Outlier, Spread::Measured]
+    }
+
+    fn to_possible_value(&self) -> Option<PossibleValue> {
+        let help = match self {
+            Spread::Uniform => "Every layer at --sparsity",
+            Spread::Outlier => "Per block, shifted against its outlier ratio (Yin et al. 2024)",
+            Spread::Measured => {
+                "Measured error curves and output sensitivities, allocated to the least \
+                 predicted change of the final hidden states (text calibration)"
+            }
+        };
+        Some(PossibleValue::new(self.name()).help(help))
+    }
+}
+
+/// How an overall --sparsity is spread over the layers.
+#[derive(Debug, Args, Clone)]
+#[command(next_help_heading = "Per-layer sparsity")]
+pub struct SpreadArgs {
+    /// --sparsity is the overall fraction of zeros over the selected
+    /// weights; this chooses each layer's share.
+    #[arg(long, value_enum, default_value = "uniform")]
+    pub spread: Spread,
+    /// With --spread: no layer sparser than this.
+    #[arg(long, value_name = "S", default_value_t = 0.95, allow_negative_numbers = true)]
+    pub layer_max: f64,
+    /// With --spread: no layer denser than this.
+    #[arg(long, value_name = "S", default_value_t = 0.0, allow_negative_numbers = true)]
+    pub layer_min: f64,
 }
 
 /// Which tensors a command works on.
@@ -212,6 +247,9 @@ pub struct PruneArgs {
     /// (obs and l0 always refit).
     #[arg(long, help_heading = "Structured")]
     pub refit: bool,
+    /// Per-layer sparsities under the overall --sparsity.
+    #[command(flatten)]
+    pub spread: SpreadArgs,
     /// Output: a .safetensors file for a single-file model, a directory for
     /// a sharded model or a model directory.
     #[arg(short = 'o', long = "output", value_name = "OUT")]

@@ -2,8 +2,9 @@
 //! ([`job_config`] for what prune and compare share), so every command
 //! checks a flag the same way; every message names the option at fault.
 
-use super::args::{CompareArgs, JobArgs, PruneArgs, SelectionArgs};
+use super::args::{CompareArgs, JobArgs, PruneArgs, SelectionArgs, SpreadArgs};
 use crate::compare::{data, CompareConfig};
+use crate::driver::allocate::{Spread, SpreadConfig};
 use crate::driver::{Amount, CutSpec, JobConfig, PruneConfig, Target};
 use crate::error::{Error, Result};
 use crate::evaluate::EvalOptions;
@@ -164,14 +165,44 @@ pub fn prune_config(a: &PruneArgs) -> Result<PruneConfig> {
     if let Calibration::Text(t) = &mut job.calibration {
         t.by_block = !a.whole_model;
     }
+    let spread = spread_config(&a.spread, pattern, cut.is_some())?;
     Ok(PruneConfig {
         whole_model: a.whole_model,
         job,
-        target: Target { method: a.method, pattern, cut },
+        spread,
+        target: Target { method: a.method, pattern, cut, per_layer: None },
         output: a.output.clone(),
         report: a.report.clone(),
         trace: a.trace.clone(),
     })
+}
+
+/// Validate the per-layer spread of an overall target.
+fn spread_config(a: &SpreadArgs, pattern: Pattern, cut: bool) -> Result<Option<SpreadConfig>> {
+    for (flag, v) in [("--layer-max", a.layer_max), ("--layer-min", a.layer_min)] {
+        if !(0.0..1.0).contains(&v) {
+            return Err(Error::usage(format!("{flag} {v} is outside [0, 1)")));
+        }
+    }
+    if a.spread == Spread::Uniform {
+        return Ok(None);
+    }
+    let Some(s) = pattern.sparsity() else {
+        return Err(Error::usage(format!("--spread {} needs --sparsity, not --pattern", a.spread)));
+    };
+    if cut {
+        return Err(Error::usage(format!(
+            "--spread {} does not combine with --remove-neurons / --remove-heads",
+            a.spread
+        )));
+    }
+    if !(a.layer_min..=a.layer_max).contains(&s) {
+        return Err(Error::usage(format!(
+            "--sparsity {s} must lie within --layer-min {} and --layer-max {}",
+            a.layer_min, a.layer_max
+        )));
+    }
+    Ok(Some(SpreadConfig { spread: a.spread, cap: a.layer_max, floor: a.layer_min }))
 }
 
 /// Validate `lopper compare`.

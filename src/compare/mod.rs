@@ -157,9 +157,9 @@ impl Record<'_> {
     /// single-file model, or the folder of a sharded or folder model.
     fn write_model(&mut self, run: usize, replaced: &BTreeMap<String, Vec<f64>>) -> Result<()> {
         (self.progress)(Progress::Writing);
-        let target = self.cfg.runs()[run];
+        let target = self.cfg.runs()[run].clone();
         let (dir, out) = model_output(self.cfg, self.model, &self.comp.runs[run].id);
-        let meta = driver::model_meta(&self.cfg.job, target, self.planned.len());
+        let meta = driver::model_meta(&self.cfg.job, &target, self.planned.len());
         // Held while files are staged and renamed: a signal that stops the
         // process at once waits, so no temporary is left behind.
         let _guard = self.control.writing.lock().unwrap_or_else(|e| e.into_inner());

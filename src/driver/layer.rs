@@ -309,7 +309,7 @@ pub enum Narrow<'a> {
 }
 
 /// Whether `target` prunes nothing beyond a structured cut.
-pub(crate) fn cut_only(target: Target) -> bool {
+pub(crate) fn cut_only(target: &Target) -> bool {
     target.cut.is_some()
         && matches!(target.pattern, solve::Pattern::Unstructured { sparsity, .. } if sparsity == 0.0)
 }
@@ -335,7 +335,7 @@ pub fn solve_narrowed(
     narrow: Option<&Narrow<'_>>,
     par: Par,
 ) -> Result<Option<Solved>> {
-    let only_cut = cut_only(target);
+    let only_cut = cut_only(&target);
     let (d_out, d_in) = (w.nrows(), w.ncols());
     let sub = |shape: [usize; 2]| Planned { shape, ..layer.clone() };
     match narrow {

@@ -16,6 +16,7 @@
 //! by `threads`; the driver itself is sequential, so reports come out in
 //! layer order.
 
+pub mod allocate;
 pub mod cut;
 mod layer;
 mod prune;
@@ -37,7 +38,9 @@ use crate::select::Selection;
 use crate::solve::{self, L0Params, Method, Pattern};
 use crate::source::{self, Calibration, LayerSource, PlanParams, Planned};
 use faer::Par;
+use std::collections::BTreeMap;
 use std::path::PathBuf;
+use std::sync::Arc;
 use std::time::Instant;
 
 /// Run `write` (an output that copies from `model`'s memory-mapped files)
@@ -98,7 +101,7 @@ impl JobConfig {
 }
 
 /// One run: a method at a target.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct Target {
     /// Solver.
     pub method: Method,
@@ -106,12 +109,25 @@ pub struct Target {
     pub pattern: Pattern,
     /// Structured pruning: units removed from every block first.
     pub cut: Option<CutSpec>,
+    /// Unstructured sparsity per layer name, overriding the pattern's
+    /// (an allocation, see [`allocate`]).
+    pub per_layer: Option<Arc<BTreeMap<String, f64>>>,
 }
 
 impl Target {
     /// Unstructured or N:M pruning only.
     pub fn new(method: Method, pattern: Pattern) -> Self {
-        Target { method, pattern, cut: None }
+        Target { method, pattern, cut: None, per_layer: None }
+    }
+
+    /// The target of layer `name`: its allocated sparsity when it has one.
+    pub fn at_layer(&self, name: &str) -> Target {
+        let mut t = Target { per_layer: None, ..self.clone() };
+        let s = self.per_layer.as_ref().and_then(|m| m.get(name));
+        if let (Some(&sparsity), Pattern::Unstructured { scope, .. }) = (s, self.pattern) {
+            t.pattern = Pattern::Unstructured { sparsity, scope };
+        }
+        t
     }
 }
 
@@ -270,7 +286,7 @@ pub fn drive<'m>(
             let t = Instant::now();
             let mut cuts: Vec<Vec<UnitCut>> = vec![Vec::new(); targets.len()];
             for &r in &cohort {
-                cuts[r] = cut_block(cfg, targets[r], src.as_ref(), b, &layers, &stats, par)?;
+                cuts[r] = cut_block(cfg, &targets[r], src.as_ref(), b, &layers, &stats, par)?;
                 for c in &cuts[r] {
                     sink.cut(r, c)?;
                 }
@@ -288,7 +304,7 @@ pub fn drive<'m>(
                     let narrow = narrow_for(&cuts[r], &layer.name);
                     let solved = solve_narrowed(
                         cfg,
-                        targets[r],
+                        targets[r].at_layer(&layer.name),
                         layer,
                         w.as_ref(),
                         grams,
@@ -381,7 +397,7 @@ fn check_cuts(targets: &[Target], src: &dyn LayerSource) -> Result<()> {
 /// The units run `target` removes from block `b`.
 fn cut_block(
     cfg: &JobConfig,
-    target: Target,
+    target: &Target,
     src: &dyn LayerSource,
     b: usize,
     layers: &[Planned],

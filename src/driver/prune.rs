@@ -1,6 +1,7 @@
 //! `lopper prune`: one run of the driver, then the pruned model, the trace
 //! and the report, written only when every layer succeeded.
 
+use super::allocate::{self, SpreadConfig};
 use super::shrink::shrink;
 use super::{drive, open_source, JobConfig, Progress, Sink, Solved, Target, UnitCut};
 use crate::error::Result;
@@ -32,6 +33,9 @@ pub struct PruneConfig {
     /// finish, unless the run needs them all at the end (`--eval-text`, a
     /// structured cut).
     pub whole_model: bool,
+    /// How an unstructured target is spread over the layers (`None`:
+    /// every layer at the target).
+    pub spread: Option<SpreadConfig>,
 }
 
 /// Keeps one run's results until they are written: the pruned weights go
@@ -84,7 +88,7 @@ impl Sink for Collect<'_> {
 /// The `lopper.*` metadata written into a pruned model.
 pub(crate) fn model_meta(
     job: &JobConfig,
-    target: Target,
+    target: &Target,
     layers: usize,
 ) -> BTreeMap<String, String> {
     let mut meta = BTreeMap::new();
@@ -141,12 +145,31 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         // Fail on a bad evaluation file before the long part.
         crate::tokenize::read_text(t)?;
     }
-    let targets = [cfg.target];
+    let mut target = cfg.target.clone();
+    let mut allocation = None;
+    if let (Some(spread), Some(overall)) = (cfg.spread, target.pattern.sparsity()) {
+        let scope = match target.pattern {
+            crate::solve::Pattern::Unstructured { scope, .. } => scope,
+            crate::solve::Pattern::NofM { .. } => unreachable!("has a sparsity"),
+        };
+        if let Some(a) = allocate::plan(job, &model, overall, scope, spread, progress)? {
+            target = allocate::allocated(target, &a);
+            allocation = Some(a.report);
+        }
+    }
+    let targets = [target];
+    let meta_with = |layers: usize| {
+        let mut meta = model_meta(job, &cfg.target, layers);
+        if let Some(a) = &allocation {
+            meta.insert("lopper.spread".to_string(), a.spread.clone());
+        }
+        meta
+    };
     let source = open_source(job, &targets, &model)?;
     let text = source.description();
     let planned: usize = source.blocks().iter().map(Vec::len).sum();
     let estimate =
-        crate::estimate::check(&model, cfg.target, &cfg.output, source.as_ref(), cfg.whole_model)?;
+        crate::estimate::check(&model, &targets[0], &cfg.output, source.as_ref(), cfg.whole_model)?;
     progress(Progress::Note(&estimate.line()));
     // Every output is staged (temporaries in the target folders) and
     // renamed into place together once all are written; a failure removes
@@ -154,7 +177,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     let mut staged = io::Staged::new();
     let mut sink = Collect::default();
     if !cfg.whole_model && job.eval.is_none() && cfg.target.cut.is_none() {
-        let meta = model_meta(job, cfg.target, planned);
+        let meta = meta_with(planned);
         let begin = io::StreamedModel::begin(&mut staged, &model, &cfg.output, &meta);
         sink.writer = Some(begin.map_err(|e| flagged("-o", e))?);
     }
@@ -187,7 +210,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         text,
         threads: job.threads,
     };
-    let meta = model_meta(job, cfg.target, sink.layers.len());
+    let meta = meta_with(sink.layers.len());
     let (written, structure) = if let Some(w) = sink.writer.take() {
         super::write_checked(&model, || w.finish(&mut staged, &meta))?;
         (model_files, None)
@@ -233,6 +256,10 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     if let Some(path) = &cfg.report {
         outputs.push(path.display().to_string());
     }
+    if let Some(a) = &mut allocation {
+        let errors = sink.layers.iter().map(|l| (l.name.clone(), l.rel_error)).collect();
+        allocate::record_solved(a, &errors);
+    }
     let summary = Summary::of(&sink.layers, t0.elapsed().as_secs_f64());
     let report = Report {
         settings,
@@ -242,6 +269,7 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
         timing: sink.timing,
         eval,
         structure,
+        allocation,
         notice: VALIDATION_NOTICE.to_string(),
     };
     if let Some(path) = &cfg.report {

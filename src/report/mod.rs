@@ -7,6 +7,8 @@
 //! order they were pruned (sorted by tensor name), so the same inputs give
 //! the same report apart from timings.
 
+pub mod allocation;
+
 use serde::{Deserialize, Serialize};
 use std::fmt::Write as _;
 
@@ -173,6 +175,10 @@ pub struct Report {
     /// Structured pruning: the units removed per block (`null` without).
     #[serde(default)]
     pub structure: Option<StructureReport>,
+    /// Per-layer sparsities chosen under one overall target (absent for a
+    /// uniform target).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub allocation: Option<allocation::AllocationReport>,
     /// [`VALIDATION_NOTICE`].
     pub notice: String,
 }
@@ -574,6 +580,7 @@ mod tests {
         let layers = vec![layer("a", 10, 0.1, Some(0.2))];
         let r = Report {
             structure: None,
+            allocation: None,
             settings: Settings {
                 method: "obs".into(),
                 sparsity: Some(0.5),
@@ -651,6 +658,7 @@ mod tests {
         let layers = vec![layer("a", 10, 0.1, Some(0.2)), empty];
         let r = Report {
             structure: None,
+            allocation: None,
             settings: Settings {
                 method: "obs".into(),
                 sparsity: Some(0.5),

@@ -19,6 +19,7 @@
 //!
 //! Submodules, one per step:
 //! - [`budget`]: how many weights each row / the layer keeps.
+//! - [`allocate`]: per-layer sparsities under one global budget.
 //! - [`mask`]: top-k selection of a score matrix under a pattern.
 //! - [`baseline`]: `magnitude` and `scaled` (score-only, no weight update).
 //! - [`obs`]: the column-sequential Optimal Brain Surgeon sweep.
@@ -27,6 +28,7 @@
 //! - [`group`]: structured pruning: which input columns (neurons, heads) a
 //!   layer keeps, shared by every row, with the exact refit.
 
+pub mod allocate;
 pub mod baseline;
 pub mod budget;
 pub mod certify;
