@@ -26,6 +26,10 @@ use crate::source::{LayerSource, Planned};
 use std::collections::BTreeSet;
 use std::path::Path;
 
+/// Runs whose estimated peak memory or output size reaches this many bytes
+/// (1 GiB) print the estimate before starting.
+pub const NOTE_FROM: u128 = 1 << 30;
+
 /// The estimate's parts, in bytes.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct Estimate {

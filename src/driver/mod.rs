@@ -238,7 +238,9 @@ pub fn open_source<'m>(
 ) -> Result<Box<dyn LayerSource + 'm>> {
     let pairs: Vec<(Method, Pattern)> = targets.iter().map(|t| (t.method, t.pattern)).collect();
     let structured = targets.iter().any(|t| t.cut.is_some());
-    source::open(&cfg.calibration, model, &plan_params(cfg, &pairs, structured))
+    let src = source::open(&cfg.calibration, model, &plan_params(cfg, &pairs, structured))?;
+    check_cuts(targets, src.as_ref())?;
+    Ok(src)
 }
 
 /// Solve every selected layer of `first` for every run of `targets`,
