@@ -54,7 +54,6 @@ pub mod compare;
 pub mod deploy;
 pub mod driver;
 pub mod error;
-pub mod estimate;
 pub mod evaluate;
 pub mod io;
 pub mod outputs;

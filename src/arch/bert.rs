@@ -233,8 +233,4 @@ impl Network for Bert {
     fn linears_mut(&mut self) -> &mut Linears {
         &mut self.linears
     }
-
-    fn set_kernel(&mut self, name: &str, k: Option<super::kernel::Kernel>) -> Result<()> {
-        self.linears.set_kernel(name, k)
-    }
 }

@@ -24,7 +24,6 @@
 //! are refused with an error rather than computed wrongly.
 
 use super::decode::{attention_at, KvCache};
-use super::kernel::Kernel;
 use super::units::{self, UnitKind, Units};
 use super::{
     attention, layer_norm, merge_heads, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
@@ -310,10 +309,6 @@ impl Network for Gpt2 {
 
     fn linears_mut(&mut self) -> &mut Linears {
         &mut self.linears
-    }
-
-    fn set_kernel(&mut self, name: &str, k: Option<Kernel>) -> Result<()> {
-        self.linears.set_kernel(name, k)
     }
 }
 

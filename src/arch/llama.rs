@@ -32,7 +32,6 @@
 //! window is refused rather than computed with the wrong mask.
 
 use super::decode::{attention_at, KvCache};
-use super::kernel::Kernel;
 use super::units::{self, Slice, UnitKind, Units};
 use super::{
     attention, merge_heads, rms_norm, rows, split_heads, ArchConfig, ArchError, ArchErrorKind,
@@ -498,10 +497,6 @@ impl Network for Llama {
 
     fn linears_mut(&mut self) -> &mut Linears {
         &mut self.linears
-    }
-
-    fn set_kernel(&mut self, name: &str, k: Option<Kernel>) -> Result<()> {
-        self.linears.set_kernel(name, k)
     }
 }
 

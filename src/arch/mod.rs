@@ -427,7 +427,9 @@ pub trait Network: Send + Sync {
     /// # Errors
     /// [`ArchErrorKind::Weights`] for an unknown name or a sparse weight of
     /// another shape.
-    fn set_kernel(&mut self, name: &str, k: Option<kernel::Kernel>) -> Result<()>;
+    fn set_kernel(&mut self, name: &str, k: Option<kernel::Kernel>) -> Result<()> {
+        self.linears_mut().set_kernel(name, k)
+    }
 
     /// Decoders: run new tokens `batch` (positions `cache.len()..`) through
     /// every block, reading and extending the key/value `cache`, and return

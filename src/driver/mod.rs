@@ -18,6 +18,7 @@
 
 pub mod allocate;
 pub mod cut;
+pub mod estimate;
 mod layer;
 mod prune;
 pub mod shrink;

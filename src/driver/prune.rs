@@ -169,10 +169,10 @@ pub fn prune(cfg: &PruneConfig, progress: &dyn Fn(Progress<'_>)) -> Result<Repor
     let text = source.description();
     let planned: usize = source.blocks().iter().map(Vec::len).sum();
     let estimate =
-        crate::estimate::check(&model, &targets[0], &cfg.output, source.as_ref(), cfg.whole_model)?;
+        super::estimate::check(&model, &targets[0], &cfg.output, source.as_ref(), cfg.whole_model)?;
     // Worth a line only where memory or disk can run short; small runs
     // (and every error message after them) stay one line.
-    if estimate.peak().max(estimate.disk) >= crate::estimate::NOTE_FROM {
+    if estimate.peak().max(estimate.disk) >= super::estimate::NOTE_FROM {
         progress(Progress::Note(&estimate.line()));
     }
     // Every output is staged (temporaries in the target folders) and

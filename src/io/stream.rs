@@ -16,8 +16,7 @@ use std::fs::File;
 use std::os::unix::fs::FileExt;
 use std::path::{Path, PathBuf};
 
-use super::dtype::{encode_f64, EncodeError};
-use super::write::{model_targets_with, stage_files, tensor_parts, Edits, Staged};
+use super::write::{encode_checked, model_targets_with, stage_files, tensor_parts, Edits, Staged};
 use super::{Model, TensorFile, WriteError, WriteErrorKind as K};
 
 /// One output tensor file being filled.
@@ -105,36 +104,7 @@ impl<'m> StreamedModel<'m> {
         let (Some(info), Some(&fi)) = (self.model.get(name), self.by_name.get(name)) else {
             return Err(err(K::NoSuchTensor, "no such tensor in the input model".into()));
         };
-        let count: usize = info.shape.iter().product();
-        if values.len() != count {
-            let shape = &info.shape;
-            return Err(err(
-                K::ShapeMismatch,
-                format!(
-                    "{} values were given for shape {shape:?} ({count} elements)",
-                    values.len()
-                ),
-            ));
-        }
-        let mut bytes = Vec::new();
-        match encode_f64(info.dtype, values, &mut bytes) {
-            Ok(()) => {}
-            Err(EncodeError::Unsupported) => {
-                return Err(err(
-                    K::UnsupportedDtype,
-                    format!("cannot write dtype {}; expected F16, BF16, F32 or F64", info.dtype),
-                ))
-            }
-            Err(EncodeError::NotRepresentable { index, value }) => {
-                return Err(err(
-                    K::NotRepresentable { index },
-                    format!(
-                        "value {value} at index {index} is not representable in {}",
-                        info.dtype
-                    ),
-                ))
-            }
-        }
+        let bytes = encode_checked(&self.out, name, info.dtype, &info.shape, values)?;
         let f = &self.files[fi];
         let &(_, offset, _) = f.parts.iter().find(|p| p.0 == name).expect("indexed above");
         f.file

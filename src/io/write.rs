@@ -29,7 +29,7 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicUsize, Ordering};
 
 use super::dtype::{encode_f64, EncodeError};
-use super::{Layout, Model, TensorFile, WriteError, WriteErrorKind as K};
+use super::{Dtype, Layout, Model, TensorFile, WriteError, WriteErrorKind as K};
 
 /// Write a file atomically: `write` fills a temp file created next to `path`,
 /// which is then flushed, fsynced and renamed over `path`. On any error the
@@ -685,38 +685,41 @@ fn encode_replaced<'a>(
             .get(name)
             .ok_or_else(|| err(K::NoSuchTensor, "no such tensor in the input model".into()))?;
         let shape = reshaped.get(name).unwrap_or(&info.shape);
-        let count: usize = shape.iter().product();
-        if values.len() != count {
-            return Err(err(
-                K::ShapeMismatch,
-                format!(
-                    "{} values were given for shape {shape:?} ({count} elements)",
-                    values.len(),
-                ),
-            ));
-        }
-        let mut bytes = Vec::new();
-        match encode_f64(info.dtype, values, &mut bytes) {
-            Ok(()) => {}
-            Err(EncodeError::Unsupported) => {
-                return Err(err(
-                    K::UnsupportedDtype,
-                    format!("cannot write dtype {}; expected F16, BF16, F32 or F64", info.dtype),
-                ))
-            }
-            Err(EncodeError::NotRepresentable { index, value }) => {
-                return Err(err(
-                    K::NotRepresentable { index },
-                    format!(
-                        "value {value} at index {index} is not representable in {}",
-                        info.dtype
-                    ),
-                ))
-            }
-        }
+        let bytes = encode_checked(out, name, info.dtype, shape, values)?;
         encoded.insert(name.as_str(), bytes);
     }
     Ok(encoded)
+}
+
+/// `values` encoded to `dtype`, checked against `shape`: errors name the
+/// output `out` and tensor `name`.
+pub(super) fn encode_checked(
+    out: &Path,
+    name: &str,
+    dtype: Dtype,
+    shape: &[usize],
+    values: &[f64],
+) -> Result<Vec<u8>, WriteError> {
+    let err = |kind, d: String| WriteError::new(out, kind, d).tensor(name);
+    let count: usize = shape.iter().product();
+    if values.len() != count {
+        return Err(err(
+            K::ShapeMismatch,
+            format!("{} values were given for shape {shape:?} ({count} elements)", values.len()),
+        ));
+    }
+    let mut bytes = Vec::new();
+    match encode_f64(dtype, values, &mut bytes) {
+        Ok(()) => Ok(bytes),
+        Err(EncodeError::Unsupported) => Err(err(
+            K::UnsupportedDtype,
+            format!("cannot write dtype {dtype}; expected F16, BF16, F32 or F64"),
+        )),
+        Err(EncodeError::NotRepresentable { index, value }) => Err(err(
+            K::NotRepresentable { index },
+            format!("value {value} at index {index} is not representable in {dtype}"),
+        )),
+    }
 }
 
 /// The header and the input's data parts, in file order, of tensor file
